@@ -1,0 +1,158 @@
+"""The energy evaluator: one OpenMM context per system, used for batches of conformers.
+
+Positions are nm, energies kJ/mol, times ps; reduced energies are u = U / kT.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import openmm
+from openmm import unit
+
+# Molar gas constant, kJ/mol/K (CODATA 2018, exact by the SI definition of k_B and N_A).
+GAS_CONSTANT_KJ = 0.00831446261815324
+# Below this many atoms the Reference platform is faster than the CPU platform per energy call
+# and per Langevin step on this project's 2-core machines (see the benchmark table in
+# DEVELOPERS.md, `python -m hopwell.bench.energy`).
+REFERENCE_PLATFORM_MAX_ATOMS = 120
+DEFAULT_TIMESTEP_PS = 0.001
+DEFAULT_FRICTION_PER_PS = 1.0
+
+
+def kT_kj(temperature_K: float) -> float:
+    """Thermal energy k_B T in kJ/mol."""
+    return GAS_CONSTANT_KJ * temperature_K
+
+
+def choose_platform(n_atoms: int, name: str | None = None) -> openmm.Platform:
+    """The OpenMM platform to use: ``name`` if given, else by atom count."""
+    if name is None:
+        name = "Reference" if n_atoms <= REFERENCE_PLATFORM_MAX_ATOMS else "CPU"
+    try:
+        return openmm.Platform.getPlatformByName(name)
+    except Exception:  # OpenMM raises a plain Exception for unknown platforms
+        names = [openmm.Platform.getPlatform(i).getName() for i in range(openmm.Platform.getNumPlatforms())]
+        raise ValueError(f"unknown OpenMM platform {name!r}; available: {', '.join(names)}") from None
+
+
+class EnergyEvaluator:
+    """Energies, forces, minimization and Langevin dynamics for one OpenMM system.
+
+    Parameters
+    ----------
+    system : openmm.System
+    temperature_K : float
+        Sets kT for reduced energies and the Langevin thermostat.
+    platform : str, optional
+        OpenMM platform name; chosen from the atom count when omitted.
+    timestep_ps, friction_per_ps : float
+        ``LangevinMiddleIntegrator`` settings.
+    seed : int
+        Seed of the integrator's random numbers (0 lets OpenMM pick one).
+
+    Examples
+    --------
+    >>> from hopwell.systems.builder import build
+    >>> molsys = build("CCO")
+    >>> evaluator = EnergyEvaluator(molsys.system, 300.0)
+    >>> evaluator.energies_kj(molsys.seeds_nm).shape == (len(molsys.seeds_nm),)
+    True
+    """
+
+    def __init__(
+        self,
+        system: openmm.System,
+        temperature_K: float,
+        platform: str | None = None,
+        timestep_ps: float = DEFAULT_TIMESTEP_PS,
+        friction_per_ps: float = DEFAULT_FRICTION_PER_PS,
+        seed: int = 0,
+    ):
+        if temperature_K <= 0:
+            raise ValueError(f"temperature must be positive, got {temperature_K} K")
+        self.n_atoms = system.getNumParticles()
+        self.temperature_K = float(temperature_K)
+        self.kT = kT_kj(temperature_K)
+        self.integrator = openmm.LangevinMiddleIntegrator(
+            temperature_K * unit.kelvin, friction_per_ps / unit.picosecond, timestep_ps * unit.picosecond
+        )
+        self.integrator.setRandomNumberSeed(seed)
+        self.platform = choose_platform(self.n_atoms, platform)
+        self.context = openmm.Context(system, self.integrator, self.platform)
+        self.masses_da = np.array(
+            [system.getParticleMass(i).value_in_unit(unit.dalton) for i in range(self.n_atoms)]
+        )
+
+    def _check(self, positions_nm) -> np.ndarray:
+        x = np.asarray(positions_nm, dtype=float)
+        if x.ndim == 2:
+            x = x[None]
+        if x.ndim != 3 or x.shape[1:] != (self.n_atoms, 3):
+            raise ValueError(
+                f"positions_nm must have shape (batch, {self.n_atoms}, 3), got {np.shape(positions_nm)}"
+            )
+        return x
+
+    def energies_kj(self, positions_nm, groups: set[int] | None = None) -> np.ndarray:
+        """Potential energies (kJ/mol), shape ``(batch,)``; non-finite where OpenMM fails."""
+        x = self._check(positions_nm)
+        out = np.empty(len(x))
+        kwargs = {"groups": groups} if groups is not None else {}
+        for k, xyz in enumerate(x):
+            self.context.setPositions(xyz)
+            state = self.context.getState(getEnergy=True, **kwargs)
+            out[k] = state.getPotentialEnergy().value_in_unit(unit.kilojoule_per_mole)
+        return out
+
+    def reduced(self, positions_nm) -> np.ndarray:
+        """Reduced potential energies u = U / kT, shape ``(batch,)``."""
+        return self.energies_kj(positions_nm) / self.kT
+
+    def forces_kj_nm(self, positions_nm) -> np.ndarray:
+        """Forces (kJ/mol/nm), shape ``(batch, n_atoms, 3)``."""
+        x = self._check(positions_nm)
+        out = np.empty_like(x)
+        for k, xyz in enumerate(x):
+            self.context.setPositions(xyz)
+            state = self.context.getState(getForces=True)
+            out[k] = state.getForces(asNumpy=True).value_in_unit(unit.kilojoule_per_mole / unit.nanometer)
+        return out
+
+    def minimize(self, positions_nm, tolerance_kj_nm: float = 1.0, max_iterations: int = 0) -> np.ndarray:
+        """Local energy minimization (L-BFGS, OpenMM), shape ``(batch, n_atoms, 3)``."""
+        x = self._check(positions_nm)
+        out = np.empty_like(x)
+        for k, xyz in enumerate(x):
+            self.context.setPositions(xyz)
+            openmm.LocalEnergyMinimizer.minimize(self.context, tolerance_kj_nm, max_iterations)
+            out[k] = self.context.getState(getPositions=True).getPositions(asNumpy=True).value_in_unit(unit.nanometer)
+        return out
+
+    def langevin(self, positions_nm, n_steps: int, velocities_nm_ps=None):
+        """Run ``n_steps`` of Langevin dynamics from one structure.
+
+        Parameters
+        ----------
+        positions_nm : array, shape ``(n_atoms, 3)``
+        n_steps : int
+        velocities_nm_ps : array, shape ``(n_atoms, 3)``, optional
+            Drawn from Maxwell-Boltzmann at the evaluator's temperature when omitted.
+
+        Returns
+        -------
+        positions_nm, velocities_nm_ps : numpy.ndarray, shape ``(n_atoms, 3)``
+        energy_kj : float
+        """
+        x = self._check(positions_nm)[0]
+        self.context.setPositions(x)
+        if velocities_nm_ps is None:
+            self.context.setVelocitiesToTemperature(self.temperature_K * unit.kelvin, self.integrator.getRandomNumberSeed())
+        else:
+            self.context.setVelocities(np.asarray(velocities_nm_ps, dtype=float))
+        self.integrator.step(int(n_steps))
+        state = self.context.getState(getPositions=True, getVelocities=True, getEnergy=True)
+        return (
+            state.getPositions(asNumpy=True).value_in_unit(unit.nanometer),
+            state.getVelocities(asNumpy=True).value_in_unit(unit.nanometer / unit.picosecond),
+            state.getPotentialEnergy().value_in_unit(unit.kilojoule_per_mole),
+        )

@@ -1,0 +1,253 @@
+"""Tests of hopwell.stats against references outside hopwell."""
+
+import numpy as np
+import pytest
+from pymbar import timeseries as pymbar_timeseries
+from scipy import constants, signal, stats
+
+from hopwell.stats import (
+    BLOCK_FACTOR,
+    count_transitions,
+    free_energy_differences,
+    integrated_autocorrelation_time,
+    kish_ess,
+    population_estimate,
+    self_normalized_populations,
+    split_rhat,
+    statistical_inefficiency,
+)
+
+# kT at 298.15 K in kJ/mol from the CODATA gas constant (scipy.constants).
+KT = constants.R * 298.15 / 1000.0
+
+
+def ar1(rng, rho, shape):
+    """Stationary AR(1) series with unit variance along the last axis."""
+    eps = rng.standard_normal(shape)
+    zi = rho * rng.standard_normal(shape[:-1] + (1,))
+    return signal.lfilter([np.sqrt(1 - rho**2)], [1, -rho], eps, axis=-1, zi=zi)[0]
+
+
+def markov_two_state(rng, start, n, p_switch):
+    """Two-state Markov chains (one per entry of ``start``), shape (len(start), n)."""
+    flips = rng.random((len(start), n)) < p_switch
+    flips[:, 0] = False
+    return (np.asarray(start)[:, None] + np.cumsum(flips, axis=1)) % 2
+
+
+# AR(1): rho_t = rho**t, so g = 1 + 2 sum rho**t = (1 + rho) / (1 - rho)
+# (closed form, e.g. Sokal 1997, "Monte Carlo methods in statistical mechanics").
+@pytest.mark.parametrize("rho, n", [(0.5, 100_000), (0.9, 1_000_000), (0.99, 2_000_000)])
+def test_inefficiency_ar1_closed_form(rho, n):
+    x = ar1(np.random.default_rng(11), rho, (n,))
+    g_exact = (1 + rho) / (1 - rho)
+    assert statistical_inefficiency(x) == pytest.approx(g_exact, rel=0.10)
+    assert integrated_autocorrelation_time(x) == pytest.approx(rho / (1 - rho), rel=0.10)
+
+
+# pymbar.timeseries.statistical_inefficiency returns g = 1 + 2 tau (pymbar docs).
+@pytest.mark.parametrize("rho", [0.5, 0.9, 0.99])
+def test_inefficiency_matches_pymbar(rho):
+    x = ar1(np.random.default_rng(12), rho, (100_000,))
+    g_ref = pymbar_timeseries.statistical_inefficiency(x)
+    assert statistical_inefficiency(x) == pytest.approx(g_ref, rel=0.10)
+    assert integrated_autocorrelation_time(x) == pytest.approx((g_ref - 1) / 2, rel=0.10)
+
+
+def test_inefficiency_constant_and_white_noise():
+    assert statistical_inefficiency(np.full(500, 3.0)) == 1.0
+    assert integrated_autocorrelation_time(np.zeros(10)) == 0.0
+    # White noise: rho_t = 0 for t > 0, hence g = 1 (closed form above, rho = 0).
+    g = statistical_inefficiency(np.random.default_rng(13).standard_normal(100_000))
+    assert 1.0 <= g < 1.05
+
+
+def test_count_transitions_by_hand():
+    # 0 0 1 1 2 0 2: changes at 0->1, 1->2, 2->0, 0->2.
+    assert count_transitions(np.array([0, 0, 1, 1, 2, 0, 2])) == 4
+    assert count_transitions(np.array([5])) == 0
+
+
+def thresholded_ar1(rng, n_sets, n_walkers, n, rho, p_one):
+    """Binary series 1[x > q], x stationary AR(1), P(state 1) = p_one exactly.
+
+    The threshold q = Phi^-1(1 - p_one) is the Gaussian quantile (scipy.stats.norm).
+    """
+    x = ar1(rng, rho, (n_sets, n_walkers, n))
+    return (x > stats.norm.ppf(1.0 - p_one)).astype(np.int8)
+
+
+@pytest.fixture(scope="module")
+def coverage_sets():
+    # 400 data sets of 4 independent walkers x 5000 samples, true P(state 1) = 0.3.
+    return thresholded_ar1(np.random.default_rng(2024), 400, 4, 5000, 0.9, 0.3)
+
+
+def coverage(sets, rng, n_boot=200, **kwargs):
+    hits = []
+    for d in sets:
+        r = population_estimate(d, 2, rng, n_boot=n_boot, **kwargs)
+        hits.append(r.lower[1] <= 0.3 <= r.upper[1])
+    return int(np.sum(hits))
+
+
+def test_block_bootstrap_coverage(coverage_sets):
+    hits = coverage(coverage_sets, np.random.default_rng(1), resample_walkers=False)
+    # Binomial test (scipy.stats.binomtest): coverage consistent with 95 %.
+    assert stats.binomtest(hits, len(coverage_sets), 0.95).pvalue > 0.01
+    assert 0.93 <= hits / len(coverage_sets) <= 0.97
+
+
+def test_iid_bootstrap_undercovers(coverage_sets):
+    # Ignoring the correlation (blocks of one sample) must fail the same test.
+    hits = coverage(coverage_sets[:30], np.random.default_rng(2), n_boot=100, block_length=1)
+    assert stats.binomtest(hits, 30, 0.95).pvalue < 1e-6
+
+
+def test_walker_resampling_is_conservative(coverage_sets):
+    hits = coverage(coverage_sets[:200], np.random.default_rng(3), resample_walkers=True)
+    # One-sided binomial test: coverage not below 95 %.
+    assert stats.binomtest(hits, 200, 0.95, alternative="less").pvalue > 0.01
+
+
+def test_trapped_walkers():
+    # Two walkers never leave state 0, two never leave state 1.
+    rng = np.random.default_rng(4)
+    d = np.repeat([[0], [0], [1], [1]], 2000, axis=1)
+    inner = population_estimate(d, 2, rng, n_boot=500)
+    outer = population_estimate(d, 2, rng, n_boot=500, resample_walkers=True)
+    assert inner.upper[1] - inner.lower[1] < 0.05
+    assert outer.upper[1] - outer.lower[1] > 0.5
+    assert split_rhat(d) > 1.5
+
+
+def test_population_result_fields():
+    rng = np.random.default_rng(5)
+    d = thresholded_ar1(rng, 1, 3, 4000, 0.8, 0.4)[0]
+    r = population_estimate(d, 3, rng, n_boot=300)
+    np.testing.assert_allclose(r.populations, np.bincount(d.ravel(), minlength=3) / d.size)
+    assert r.replicates.shape == (300, 3)
+    np.testing.assert_allclose(r.replicates.sum(axis=1), 1.0)
+    assert r.n_samples == d.size and r.ess == pytest.approx(d.size / r.statistical_inefficiency)
+    assert r.block_length == int(np.ceil(BLOCK_FACTOR * r.statistical_inefficiency))
+    # Mean over walkers of the pymbar g of the state-1 indicator (both states agree).
+    g_ref = np.mean([pymbar_timeseries.statistical_inefficiency(w) for w in d])
+    assert r.statistical_inefficiency == pytest.approx(g_ref, rel=0.10)
+    assert np.all(r.lower <= r.populations) and np.all(r.populations <= r.upper)
+    ragged = population_estimate([d[0], d[1][:1500]], 3, rng, n_boot=50)
+    pooled = np.concatenate([d[0], d[1][:1500]])
+    np.testing.assert_allclose(ragged.populations, np.bincount(pooled, minlength=3) / pooled.size)
+
+
+def test_free_energy_interval_matches_population_interval():
+    rng = np.random.default_rng(6)
+    d = thresholded_ar1(rng, 1, 4, 3000, 0.7, 0.25)[0]
+    r = population_estimate(d, 2, rng, n_boot=2000)
+    dg = free_energy_differences(r, KT)
+    assert dg.reference == 0 and dg.values[0] == 0.0
+
+    # dG_1 = -kT ln(p1 / (1 - p1)) falls monotonically with p1, so the interval
+    # ends swap; p is smoothed with 0.5 counts per state (documented pseudocount).
+    def dg_of(p1):
+        s1 = (p1 * r.n_samples + 0.5) / (r.n_samples + 1.0)
+        return -KT * np.log(s1 / (1.0 - s1))
+
+    assert dg.values[1] == pytest.approx(dg_of(r.populations[1]))
+    assert dg.lower[1] == pytest.approx(dg_of(r.upper[1]), abs=2e-3)
+    assert dg.upper[1] == pytest.approx(dg_of(r.lower[1]), abs=2e-3)
+    flipped = free_energy_differences(r, KT, reference=1)
+    np.testing.assert_allclose(flipped.values[0], -dg.values[1])
+    np.testing.assert_allclose(flipped.replicates[:, 0], -dg.replicates[:, 1])
+
+
+def test_absent_state_pseudocount():
+    rng = np.random.default_rng(7)
+    d = markov_two_state(rng, [0, 1], 1000, 0.05)
+    r = population_estimate(d, 3, rng, n_boot=200)
+    assert r.populations[2] == 0.0 and np.all(r.replicates[:, 2] == 0.0)
+    dg = free_energy_differences(r, KT)
+    n_ref = np.bincount(d.ravel()).max()
+    # -kT ln((0 + 0.5) / (n_ref + 0.5)): 0.5 pseudocounts, common denominator cancels.
+    assert dg.values[2] == pytest.approx(-KT * np.log(0.5 / (n_ref + 0.5)))
+    assert np.all(np.isfinite(dg.replicates)) and dg.lower[2] > 0
+
+
+def test_split_rhat_hand_computation():
+    # Chains [0 1 1 1], [0 0 0 1] split into [0 1] [1 1] [0 0] [0 1] (n = 2):
+    # chain means 1/2 1 0 1/2, variances 1/2 0 0 1/2 -> W = 1/4,
+    # B = n var(means) = 2 * (1/2) / 3 = 1/3, var+ = (n-1)/n W + B/n = 7/24,
+    # R = sqrt(var+ / W) = sqrt(7/6)  (classic split R-hat, Gelman et al., BDA3 eq. 11.4).
+    # Binary draws: rank normalisation is affine, so Vehtari et al. (2021) give the same.
+    assert split_rhat(np.array([[0, 1, 1, 1], [0, 0, 0, 1]])) == pytest.approx(np.sqrt(7 / 6))
+
+
+def test_split_rhat_mixing():
+    rng = np.random.default_rng(8)
+    assert split_rhat(rng.standard_normal((4, 2000))) < 1.01
+    assert split_rhat((rng.random((4, 2000)) < 0.3).astype(int)) < 1.01
+    assert split_rhat(markov_two_state(rng, [0, 1, 0, 1], 2000, 2e-3)) > 1.1
+    assert split_rhat(np.repeat([[0], [1]], 10, axis=1)) == np.inf
+    assert np.isnan(split_rhat(np.ones((3, 10))))
+
+
+def test_kish_ess():
+    assert kish_ess(np.full(250, -3.7)) == pytest.approx(250.0)
+    assert kish_ess(np.r_[0.0, np.full(99, -np.inf)]) == pytest.approx(1.0)
+    assert kish_ess(np.r_[800.0, np.full(99, 0.0)]) == pytest.approx(1.0)
+    w = np.random.default_rng(9).random(50)
+    # Direct (sum w)^2 / sum w^2 (Kish 1965); a log-weight offset must not matter.
+    assert kish_ess(np.log(w) + 900.0) == pytest.approx(w.sum() ** 2 / (w**2).sum())
+
+
+def test_self_normalized_toy_problem():
+    rng = np.random.default_rng(10)
+    q = np.array([0.4, 0.3, 0.2, 0.1])  # proposal
+    target = np.array([0.1, 0.2, 0.3, 0.4])
+    n = 20_000
+    s = rng.choice(4, size=n, p=q)
+    lw = np.log(target / q)[s] + 7.0  # unnormalised
+    r = self_normalized_populations(s, lw, 4, rng, n_boot=400)
+    w = target / q
+    # Delta-method variance of self-normalised IS (Owen 2013, Monte Carlo
+    # theory, ch. 9): Var p_k = sum_j q_j w_j^2 (delta_jk - pi_k)^2 / n.
+    se = np.sqrt([np.sum(q * w**2 * ((np.arange(4) == k) - target[k]) ** 2) / n for k in range(4)])
+    np.testing.assert_allclose(r.replicates.std(axis=0), se, rtol=0.2)
+    assert np.all(np.abs(r.populations - target) < 4 * se)
+    # Kish ESS / n -> (E_q w)^2 / E_q w^2 = 1 / sum pi^2 / q.
+    assert r.ess / n == pytest.approx(1.0 / np.sum(target**2 / q), rel=0.05)
+    assert r.block_length == 1 and r.replicates.shape == (400, 4)
+
+
+GEN = np.random.default_rng(0)
+GOOD = np.zeros((2, 10), dtype=int)
+
+
+@pytest.mark.parametrize(
+    "call",
+    [
+        lambda: population_estimate(np.array([[0, -1, 0, 1]]), 2, GEN),
+        lambda: population_estimate(np.array([[0, 2, 0, 1]]), 2, GEN),
+        lambda: population_estimate(np.array([0, 1, 0, 1]), 2, GEN),
+        lambda: population_estimate(np.zeros((2, 2, 5), dtype=int), 2, GEN),
+        lambda: population_estimate(GOOD.astype(float), 2, GEN),
+        lambda: population_estimate(GOOD, 2, GEN, n_boot=0),
+        lambda: population_estimate(GOOD, 2, GEN, confidence=1.5),
+        lambda: population_estimate(GOOD, 2, 42),
+        lambda: population_estimate(GOOD, 0, GEN),
+        lambda: population_estimate(GOOD, 2, GEN, block_length=0),
+        lambda: statistical_inefficiency(np.zeros((3, 3))),
+        lambda: statistical_inefficiency([1.0, np.nan]),
+        lambda: count_transitions(np.zeros((2, 2), dtype=int)),
+        lambda: split_rhat(np.zeros(10)),
+        lambda: kish_ess([0.0, np.nan]),
+        lambda: kish_ess([-np.inf, -np.inf]),
+        lambda: self_normalized_populations([0, 1], [0.0], 2, GEN),
+        lambda: self_normalized_populations(GOOD, np.zeros((2, 10)), 2, GEN),
+        lambda: self_normalized_populations([0, 1], [0.0, 0.0], 2, GEN, n_boot=0),
+        lambda: free_energy_differences(population_estimate(GOOD, 2, GEN, n_boot=5), -1.0),
+        lambda: free_energy_differences(population_estimate(GOOD, 2, GEN, n_boot=5), KT, 2),
+    ],
+)
+def test_bad_input_raises(call):
+    with pytest.raises(ValueError):
+        call()
