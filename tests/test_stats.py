@@ -181,6 +181,26 @@ def test_split_rhat_hand_computation():
     assert split_rhat(np.array([[0, 1, 1, 1], [0, 0, 0, 1]])) == pytest.approx(np.sqrt(7 / 6))
 
 
+def test_split_rhat_rank_normalised_by_hand():
+    # Chains [1 2 3 4], [5 6 7 8]: split chains [1 2] [3 4] [5 6] [7 8], ranks
+    # equal the values; normal scores z = Phi^-1((r - 3/8) / (S + 1/4)), S = 8
+    # (Vehtari et al. 2021, eq. 14).  Folded |x - 4.5| has average ranks
+    # [7.5 5.5] [3.5 1.5] [1.5 3.5] [5.5 7.5].  Result = max(bulk, tail).
+    def gelman_rubin(z):  # BDA3 eq. 11.3-11.4, n = 2 draws per chain
+        w = z.var(axis=1, ddof=1).mean()
+        b = 2 * z.mean(axis=1).var(ddof=1)
+        return np.sqrt((w / 2 + b / 2) / w)
+
+    def scores(r):
+        return stats.norm.ppf((np.array(r) - 0.375) / 8.25)
+
+    bulk = gelman_rubin(scores([[1, 2], [3, 4], [5, 6], [7, 8]]))
+    tail = gelman_rubin(scores([[7.5, 5.5], [3.5, 1.5], [1.5, 3.5], [5.5, 7.5]]))
+    chains = np.array([[1.0, 2, 3, 4], [5, 6, 7, 8]])
+    assert split_rhat(chains) == pytest.approx(max(bulk, tail))
+    assert split_rhat(np.exp(chains)) == pytest.approx(max(bulk, tail))
+
+
 def test_split_rhat_mixing():
     rng = np.random.default_rng(8)
     assert split_rhat(rng.standard_normal((4, 2000))) < 1.01

@@ -1,0 +1,1 @@
+"""Benchmarks: modules that print a table (``python -m hopwell.bench.<name>``)."""
