@@ -162,5 +162,114 @@ def energy(as_json, **kwargs):
         click.echo(f"structure {k}: {e:.4f} kJ/mol")
 
 
+def _sampler_options(fn):
+    """Options of the sampler, shared by ``run`` and ``demo``."""
+    options = [
+        click.option("--hours", type=float, default=None, help="Wall-clock budget (hours)."),
+        click.option("--samples", type=int, default=None, help="Production samples to record."),
+        click.option("--temperature", "temperature_K", type=float, default=300.0, show_default=True,
+                     help="Temperature (K)."),
+        click.option("--walkers", type=int, default=None, help="Walkers [default: one per seed]."),
+        click.option("--training-cycles", type=int, default=None,
+                     help="Cycles of flow training before production [default: 200, or 30%% of --hours]."),
+        click.option("--langevin-steps", type=int, default=250, show_default=True,
+                     help="Langevin steps (1 fs) per cycle and walker."),
+        click.option("--proposals", type=int, default=32, show_default=True,
+                     help="Flow proposals per cycle and walker."),
+        click.option("--platform", type=click.Choice(["Reference", "CPU"]), default=None,
+                     help="OpenMM platform [default: chosen by size]."),
+    ]
+    for option in reversed(options):
+        fn = option(fn)
+    return fn
+
+
+def _budget(hours, samples):
+    from hopwell.sampler import Budget
+
+    if hours is None and samples is None:
+        raise InputError("give a budget: --hours H or --samples N")
+    if (hours is not None and hours <= 0) or (samples is not None and samples < 1):
+        raise InputError("--hours and --samples must be positive")
+    return Budget(samples=samples, seconds=None if hours is None else hours * 3600.0)
+
+
+def _progress_printer():
+    """Progress: a refreshed line on a terminal, a plain line every 50 cycles otherwise."""
+    tty = sys.stderr.isatty()
+
+    def show(sampler):
+        if not tty and sampler.cycle % 50:
+            return
+        phase = "production" if sampler.production else "training"
+        stats = sampler.stats[phase]
+        line = (f"cycle {sampler.cycle} {phase} elapsed {sampler.elapsed_s / 60:.1f} min"
+                f" flow acceptance {stats.recent_acceptance():.3f}"
+                f" samples {sampler.production_samples}")
+        click.echo(("\r" + line) if tty else line, err=True, nl=not tty)
+
+    return show
+
+
+@main.command()
+@_builder_options
+@click.option("-o", "--output", "run_dir", required=True, type=click.Path(file_okay=False),
+              help="Run directory to create.")
+@_sampler_options
+@_fail_cleanly
+def run(run_dir, hours, samples, temperature_K, walkers, training_cycles, langevin_steps,
+        proposals, platform, **kwargs):
+    """Sample the conformers of INPUT into a new run directory.
+
+    \b
+    Example:
+      hopwell run systems/ace_ala_nme.pdb -o dipeptide --hours 8 --solvent obc2
+    """
+    import torch
+
+    from hopwell.run import start_run
+    from hopwell.sampler import SamplerSettings
+    from hopwell.systems.builder import BuildOptions
+
+    budget = _budget(hours, samples)
+    settings = SamplerSettings(
+        temperature_K=temperature_K, langevin_steps=langevin_steps, proposals_per_cycle=proposals,
+        seed=kwargs["random_seed"],
+        training_cycles=training_cycles or (10**9 if hours and not samples else 200),
+        training_seconds=None if training_cycles or hours is None else 0.3 * hours * 3600.0,
+    )
+    if temperature_K <= 0 or langevin_steps < 1 or proposals < 1:
+        raise InputError("--temperature, --langevin-steps and --proposals must be positive")
+    options = BuildOptions(**{k: v for k, v in kwargs.items() if k != "input_spec"})
+    torch.set_num_threads(1)  # OpenMM and torch alternate; one thread each avoids oversubscription
+    sampler = start_run(kwargs["input_spec"], Path(run_dir), options, settings, budget,
+                        n_walkers=walkers, platform=platform, progress=_progress_printer())
+    click.echo(f"\nrun finished at cycle {sampler.cycle}: {sampler.production_samples} production"
+               f" samples in {run_dir}", err=True)
+
+
+@main.command()
+@click.argument("run_dir", type=click.Path(file_okay=False))
+@click.option("--hours", type=float, default=None, help="New wall-clock budget (hours, total).")
+@click.option("--samples", type=int, default=None, help="New total of production samples.")
+@_fail_cleanly
+def resume(run_dir, hours, samples):
+    """Continue RUN_DIR from its last checkpoint, losing and duplicating nothing.
+
+    \b
+    Example:
+      hopwell resume dipeptide --hours 12
+    """
+    import torch
+
+    from hopwell.run import resume_run
+
+    budget = None if hours is None and samples is None else _budget(hours, samples)
+    torch.set_num_threads(1)
+    sampler = resume_run(Path(run_dir), budget, progress=_progress_printer())
+    click.echo(f"\nrun finished at cycle {sampler.cycle}: {sampler.production_samples} production"
+               f" samples in {run_dir}", err=True)
+
+
 if __name__ == "__main__":  # pragma: no cover
     main()

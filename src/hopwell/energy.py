@@ -49,7 +49,8 @@ class EnergyEvaluator:
     timestep_ps, friction_per_ps : float
         ``LangevinMiddleIntegrator`` settings.
     seed : int
-        Seed of the integrator's random numbers (0 lets OpenMM pick one).
+        Seed of the integrator's random numbers and of the initial velocities drawn for each
+        Langevin segment (0 picks one at random).
 
     Examples
     --------
@@ -78,6 +79,7 @@ class EnergyEvaluator:
             temperature_K * unit.kelvin, friction_per_ps / unit.picosecond, timestep_ps * unit.picosecond
         )
         self.integrator.setRandomNumberSeed(seed)
+        self.rng = np.random.default_rng(seed if seed else None)
         self.platform = choose_platform(self.n_atoms, platform)
         self.context = openmm.Context(system, self.integrator, self.platform)
         self.masses_da = np.array(
@@ -129,6 +131,15 @@ class EnergyEvaluator:
             out[k] = self.context.getState(getPositions=True).getPositions(asNumpy=True).value_in_unit(unit.nanometer)
         return out
 
+    def maxwell_boltzmann(self) -> np.ndarray:
+        """Velocities (nm/ps) drawn from Maxwell-Boltzmann at the evaluator's temperature.
+
+        Each component is normal with variance kT/m; with kT in kJ/mol and m in Da,
+        kT/m is in (nm/ps)^2. Shape ``(n_atoms, 3)``.
+        """
+        sigma = np.sqrt(self.kT / self.masses_da)[:, None]
+        return sigma * self.rng.standard_normal((self.n_atoms, 3))
+
     def langevin(self, positions_nm, n_steps: int, velocities_nm_ps=None):
         """Run ``n_steps`` of Langevin dynamics from one structure.
 
@@ -147,9 +158,8 @@ class EnergyEvaluator:
         x = self._check(positions_nm)[0]
         self.context.setPositions(x)
         if velocities_nm_ps is None:
-            self.context.setVelocitiesToTemperature(self.temperature_K * unit.kelvin, self.integrator.getRandomNumberSeed())
-        else:
-            self.context.setVelocities(np.asarray(velocities_nm_ps, dtype=float))
+            velocities_nm_ps = self.maxwell_boltzmann()
+        self.context.setVelocities(np.asarray(velocities_nm_ps, dtype=float))
         self.integrator.step(int(n_steps))
         state = self.context.getState(getPositions=True, getVelocities=True, getEnergy=True)
         return (

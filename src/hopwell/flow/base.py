@@ -16,6 +16,7 @@ import math
 
 import numpy as np
 import torch
+from scipy import special
 
 from hopwell.internal import InternalCoords
 
@@ -43,8 +44,7 @@ def unpack(x: torch.Tensor, n_atoms: int) -> tuple[torch.Tensor, torch.Tensor, t
 
 def _log_von_mises(x: torch.Tensor, loc: torch.Tensor, kappa: torch.Tensor) -> torch.Tensor:
     """Von Mises log-density, ``kappa cos(x - loc) - log(2 pi I0(kappa))`` (I0 via i0e)."""
-    log_i0 = torch.log(torch.special.i0e(kappa)) + kappa
-    return kappa * (torch.cos(x - loc) - 1.0) - math.log(2 * math.pi) - (log_i0 - kappa)
+    return kappa * (torch.cos(x - loc) - 1.0) - math.log(2 * math.pi) - torch.log(torch.special.i0e(kappa))
 
 
 def _sample_von_mises(loc: torch.Tensor, kappa: torch.Tensor,
@@ -95,8 +95,8 @@ def _fit_von_mises_mixture(torsions: np.ndarray, n_components: int, uniform_weig
     kappa = np.full(loc.shape, MIN_KAPPA)
     weight = np.full(loc.shape, 1.0 / n_components)
     for _ in range(EM_ITERATIONS):
-        log_comp = (np.log(weight + 1e-300) + np.log1p(-uniform_weight) + kappa * np.cos(x - loc[:, None])
-                    - np.log(2 * np.pi * np.i0(kappa))[:, None])
+        log_comp = (np.log(weight)[:, None] + np.log1p(-uniform_weight) + kappa[:, None] * (np.cos(x - loc[:, None]) - 1)
+                    - np.log(2 * np.pi * special.i0e(kappa))[:, None])
         log_unif = np.full(log_comp.shape[:2] + (1,), np.log(uniform_weight / (2 * np.pi)))
         log_all = np.concatenate([log_comp, log_unif], -1)
         resp = np.exp(log_all - log_all.max(-1, keepdims=True))
@@ -126,9 +126,10 @@ class InternalBase(torch.nn.Module):
     def __init__(self, mean: torch.Tensor, width: torch.Tensor, loc_rad: torch.Tensor,
                  kappa: torch.Tensor, weight: torch.Tensor, uniform_weight: float):
         super().__init__()
-        n_bonds = (mean.shape[0] + 3) // 2  # n_bonds + n_angles = 2 n_atoms - 3
-        if mean.ndim != 1 or mean.shape != width.shape or torch.any(width <= 0):
-            raise ValueError("mean and width must be 1-d of equal length, widths positive")
+        n_bonds = (mean.shape[0] + 1) // 2  # n_bonds + n_angles = 2 n_atoms - 3
+        if mean.ndim != 1 or mean.shape != width.shape or torch.any(width <= 0) or n_bonds < 3:
+            raise ValueError("mean and width must be 1-d of equal length 2 n_atoms - 3 (at least"
+                             " 4 atoms), widths positive")
         if not (loc_rad.shape == kappa.shape == weight.shape and loc_rad.shape[0] == n_bonds - 2):
             raise ValueError("loc_rad, kappa and weight must have shape (n_torsions, n_components)")
         if not 0.0 < uniform_weight <= 1.0:

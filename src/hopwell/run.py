@@ -1,0 +1,98 @@
+"""Starting and resuming runs: the glue between the builder, the sampler and the run store."""
+
+from __future__ import annotations
+
+import io
+from dataclasses import asdict, fields
+from pathlib import Path
+
+import numpy as np
+import openmm
+from openmm import app
+from rdkit import Chem
+
+from hopwell.errors import InputError
+from hopwell.sampler import Budget, Sampler, SamplerSettings
+from hopwell.store import RunStore
+from hopwell.systems.builder import BuildOptions, MolecularSystem, build, conformer_positions_nm
+
+
+def _molecule_sdf(molsys: MolecularSystem) -> bytes:
+    """The molecule with one conformer per seed (Angstrom), as SDF text."""
+    mol = Chem.Mol(molsys.mol)
+    mol.RemoveAllConformers()
+    for xyz in molsys.seeds_nm:
+        conf = Chem.Conformer(mol.GetNumAtoms())
+        for i, row in enumerate(xyz * 10.0):
+            conf.SetAtomPosition(i, row.tolist())
+        mol.AddConformer(conf, assignId=True)
+    out = io.StringIO()
+    writer = Chem.SDWriter(out)
+    for conf in mol.GetConformers():
+        writer.write(mol, confId=conf.GetId())
+    writer.close()
+    return out.getvalue().encode()
+
+
+def _topology_pdb(molsys: MolecularSystem) -> bytes:
+    out = io.StringIO()
+    app.PDBFile.writeFile(molsys.topology, molsys.seeds_nm[0] * openmm.unit.nanometer, out)
+    return out.getvalue().encode()
+
+
+def start_run(spec: str, out_dir: Path, build_options: BuildOptions, settings: SamplerSettings,
+              budget: Budget, n_walkers: int | None = None, platform: str | None = None,
+              progress=None) -> Sampler:
+    """Build the system, create the run directory and sample until the budget is spent."""
+    molsys = build(spec, build_options)
+    if n_walkers is not None and n_walkers < 1:
+        raise InputError(f"--walkers must be at least 1, got {n_walkers}")
+    config = {
+        "input": spec,
+        "build": {k: v for k, v in asdict(build_options).items()},
+        "sampler": asdict(settings),
+        "walkers": n_walkers or len(molsys.seeds_nm),
+        "platform": platform or "",
+        "kind": molsys.kind,
+        "budget": {"samples": budget.samples, "seconds": budget.seconds},
+    }
+    store = RunStore.create(Path(out_dir), config, {
+        "molecule.sdf": _molecule_sdf(molsys),
+        "topology.pdb": _topology_pdb(molsys),
+        "system.xml": molsys.to_xml().encode(),
+    })
+    store.log(f"run started: {molsys.summary()['formula']}, {config['walkers']} walkers")
+    sampler = Sampler(molsys.mol, molsys.system, molsys.seeds_nm, settings, store,
+                      n_walkers=config["walkers"], platform=platform)
+    sampler.run(budget, progress)
+    return sampler
+
+
+def load_sampler(run_dir: Path) -> Sampler:
+    """A sampler restored from a run directory's newest checkpoint."""
+    store = RunStore.open(Path(run_dir))
+    config = store.config()
+    names = {f.name for f in fields(SamplerSettings)}
+    settings = SamplerSettings(**{k: v for k, v in config["sampler"].items() if k in names})
+    records = list(Chem.SDMolSupplier(str(store.path / "molecule.sdf"), removeHs=False))
+    mol = records[0]
+    seeds_nm = np.stack([conformer_positions_nm(m)[0] for m in records])
+    system = openmm.XmlSerializer.deserialize(store.read_text("system.xml"))
+    sampler = Sampler(mol, system, seeds_nm, settings, store, n_walkers=config["walkers"],
+                      platform=config.get("platform") or None)
+    state = store.read_state()
+    if state is None:
+        raise InputError(f"{run_dir}: no checkpoint yet; start the run again")
+    sampler.restore(state)
+    return sampler
+
+
+def resume_run(run_dir: Path, budget: Budget | None = None, progress=None) -> Sampler:
+    """Continue a run from its newest checkpoint, with its own budget unless one is given."""
+    sampler = load_sampler(run_dir)
+    if budget is None:
+        saved = sampler.store.config()["budget"]
+        budget = Budget(samples=saved.get("samples"), seconds=saved.get("seconds"))
+    sampler.store.log(f"resumed at cycle {sampler.cycle}")
+    sampler.run(budget, progress)
+    return sampler

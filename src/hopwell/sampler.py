@@ -1,0 +1,404 @@
+"""The sampler: walkers alternate Langevin segments with flow proposals under exact MH.
+
+Each cycle, for each walker:
+
+1. a Langevin segment (``LangevinMiddleIntegrator``, velocities drawn afresh from
+   Maxwell-Boltzmann at the start of the segment, which leaves the Boltzmann distribution
+   invariant);
+2. a block of independent proposals from the flow, drawn and scored in one batch, each accepted
+   with the Metropolis-Hastings ratio of an independence sampler in internal coordinates q,
+   whose target is p(q) ~ exp(-u(x(q))) J(q) (see :mod:`hopwell.internal`)::
+
+       alpha = min(1, exp(-u(x') + u(x)) * J(q') / J(q) * q_flow(q) / q_flow(q'))
+
+   Proposals flagged by the clash or stereo guard have target density zero: rejected, and
+   never sent to OpenMM.
+
+The chain state is recorded after the Langevin segment and after the proposal block (a fixed
+sub-sampling of a stationary chain is stationary). During training the flow is refit every
+few cycles on a bounded buffer of recent walker states (the chain is then adaptive, not
+Markov, so these samples are kept for diagnostics only). Training ends at a set cycle; from then
+on the flow is frozen and every walker state and every proposal (with energy, log q and log J)
+is recorded as production. See :mod:`hopwell.store` for the crash-safe run directory.
+"""
+
+from __future__ import annotations
+
+import copy
+import json
+import math
+import signal
+import time
+from collections import deque
+from dataclasses import asdict, dataclass, field
+
+import numpy as np
+import torch
+from rdkit import Chem
+
+from hopwell.energy import EnergyEvaluator
+from hopwell.guards import ProposalGuard
+from hopwell.internal import build_zmatrix, cartesian_to_internal, internal_to_cartesian
+from hopwell.moves import TorsionFlow, moving_torsions
+from hopwell.store import MOVE_FLOW, MOVE_LANGEVIN, RunStore
+from hopwell.systems.builder import rotatable_bonds
+
+# Energy rise (kJ/mol) over one Langevin segment taken as an explosion, not thermal motion:
+# thermal fluctuations of U are ~ kT sqrt(3N/2), a few tens of kJ/mol for N < 300.
+EXPLOSION_KJ = 5.0e3
+REJECT_NONE, REJECT_CLASH, REJECT_STEREO = 0, 1, 2
+
+
+@dataclass
+class SamplerSettings:
+    """How the sampler runs; every field is written to the run's ``run.toml``.
+
+    Attributes
+    ----------
+    temperature_K : float
+    timestep_fs, friction_per_ps : float
+        Langevin settings; no constraints, so 1 fs (DEVELOPERS.md states the measured bias).
+    langevin_steps : int
+        Steps per Langevin segment.
+    proposals_per_cycle : int
+        Flow proposals per walker per cycle.
+    training_cycles : int
+        Most cycles of the training phase; production follows with the flow frozen.
+    training_seconds : float or None
+        Training also ends once this much sampling time has passed (set from ``--hours``).
+    fit_every, fit_steps, fit_batch : int
+        Refit the flow every ``fit_every`` cycles with ``fit_steps`` Adam steps on minibatches.
+    learning_rate : float
+    buffer_size : int
+        Most recent walker states kept for training (bounds memory).
+    cycles_per_chunk : int
+        Cycles between chunk writes and checkpoints.
+    flow_hidden, flow_layers, flow_bins : int
+    seed : int
+    """
+
+    temperature_K: float = 300.0
+    timestep_fs: float = 1.0
+    friction_per_ps: float = 1.0
+    langevin_steps: int = 250
+    proposals_per_cycle: int = 32
+    training_cycles: int = 200
+    training_seconds: float | None = None
+    fit_every: int = 4
+    fit_steps: int = 40
+    fit_batch: int = 256
+    learning_rate: float = 2.0e-3
+    buffer_size: int = 20000
+    cycles_per_chunk: int = 10
+    flow_hidden: int = 64
+    flow_layers: int = 6
+    flow_bins: int = 8
+    seed: int = 2024
+
+
+@dataclass
+class Budget:
+    """When to stop: production samples recorded, or sampling seconds spent (or both).
+
+    Seconds count over the whole run, resumes included (the checkpoint keeps the elapsed time).
+    """
+
+    samples: int | None = None
+    seconds: float | None = None
+
+    def done(self, production_samples: int, elapsed_s: float) -> bool:
+        if self.samples is not None and production_samples >= self.samples:
+            return True
+        return self.seconds is not None and elapsed_s >= self.seconds
+
+
+@dataclass
+class CycleStats:
+    """Counts for progress display: proposals and acceptances by phase and cause."""
+
+    proposed: int = 0
+    accepted: int = 0
+    clash: int = 0
+    stereo: int = 0
+    recent: deque = field(default_factory=lambda: deque(maxlen=20))
+
+    def acceptance(self) -> float:
+        return self.accepted / self.proposed if self.proposed else float("nan")
+
+    def recent_acceptance(self) -> float:
+        if not self.recent:
+            return float("nan")
+        a, p = np.sum(self.recent, axis=0)
+        return a / p if p else float("nan")
+
+
+class Sampler:
+    """Owns the OpenMM context, the flow, the walkers and the RNGs of one run.
+
+    Parameters
+    ----------
+    mol : rdkit.Chem.Mol
+        Molecule with explicit hydrogens (graph, stereo reference).
+    system : openmm.System
+    seeds_nm : numpy.ndarray, shape ``(n_seeds, n_atoms, 3)``
+    settings : SamplerSettings
+    store : RunStore
+    n_walkers : int, optional
+        Defaults to one per seed; more are spread over the seeds in turn.
+    platform : str, optional
+    """
+
+    def __init__(self, mol: Chem.Mol, system, seeds_nm: np.ndarray, settings: SamplerSettings,
+                 store: RunStore, n_walkers: int | None = None, platform: str | None = None):
+        self.settings, self.store = settings, store
+        self.rng = np.random.default_rng(settings.seed)
+        self.torch_rng = torch.Generator().manual_seed(settings.seed)
+        self.evaluator = EnergyEvaluator(
+            system, settings.temperature_K, platform=platform,
+            timestep_ps=settings.timestep_fs * 1e-3, friction_per_ps=settings.friction_per_ps,
+            seed=int(self.rng.integers(1, 2**31 - 1)),
+        )
+        n_atoms = mol.GetNumAtoms()
+        self.zmat = build_zmatrix(
+            n_atoms,
+            [(b.GetBeginAtomIdx(), b.GetEndAtomIdx()) for b in mol.GetBonds()],
+            heavy=[a.GetAtomicNum() > 1 for a in mol.GetAtoms()],
+            rotatable=rotatable_bonds(mol),
+        )
+        self.guard = ProposalGuard.from_mol(mol, seeds_nm[0])
+        self.moving = moving_torsions(self.zmat, mol)
+        if len(self.moving) == 0:
+            raise ValueError("the molecule has no torsion about an acyclic bond to sample")
+        seeds_ic = cartesian_to_internal(self.zmat, torch.as_tensor(seeds_nm))
+        self.flow = TorsionFlow(seeds_ic.torsions_rad[:, self.moving].numpy(), transforms=settings.flow_layers,
+                                hidden=settings.flow_hidden, bins=settings.flow_bins)
+        self.optimizer = torch.optim.Adam(self.flow.parameters(), lr=settings.learning_rate)
+        n_walkers = n_walkers or len(seeds_nm)
+        self.positions_nm = np.stack([seeds_nm[k % len(seeds_nm)] for k in range(n_walkers)])
+        self.energies_kj = self.evaluator.energies_kj(self.positions_nm)
+        if not np.all(np.isfinite(self.energies_kj)):
+            raise ValueError("a seed structure has a non-finite energy")
+        self.cycle = 0
+        self.training_end_cycle = -1  # set when the flow is frozen
+        self.elapsed_s = 0.0
+        self.next_chunk = 0
+        self.buffer: deque = deque(maxlen=settings.buffer_size)
+        self.stats = {"training": CycleStats(), "production": CycleStats()}
+        self.production_samples = 0
+        self._stop = False
+        self._pending: list[tuple[dict, dict]] = []
+
+    # -- phase ----------------------------------------------------------------------------
+    @property
+    def n_walkers(self) -> int:
+        return len(self.positions_nm)
+
+    @property
+    def production(self) -> bool:
+        return self.training_end_cycle >= 0
+
+    def _maybe_end_training(self) -> None:
+        s = self.settings
+        if self.production:
+            return
+        by_time = s.training_seconds is not None and self.elapsed_s >= s.training_seconds
+        if self.cycle >= s.training_cycles or by_time:
+            self.training_end_cycle = self.cycle
+            self.store.log(f"cycle {self.cycle}: training ended, flow frozen; acceptance in"
+                           f" training {self.stats['training'].acceptance():.3f}")
+
+    # -- moves ----------------------------------------------------------------------------
+    def _langevin(self, walker: int) -> None:
+        x0, e0 = self.positions_nm[walker], self.energies_kj[walker]
+        x, _, e = self.evaluator.langevin(x0, self.settings.langevin_steps)
+        if not (np.isfinite(e) and np.all(np.isfinite(x))) or e - e0 > EXPLOSION_KJ:
+            self.store.log(f"cycle {self.cycle} walker {walker}: Langevin segment gave energy"
+                           f" {e:.4g} kJ/mol (from {e0:.4g}); rolled back to the previous state")
+            return
+        self.positions_nm[walker], self.energies_kj[walker] = x, e
+
+    def _propose(self, walker: int) -> dict:
+        """One block of flow proposals for one walker; returns the proposal records."""
+        k = self.settings.proposals_per_cycle
+        kT = self.evaluator.kT
+        with torch.no_grad():
+            current = cartesian_to_internal(self.zmat, torch.as_tensor(self.positions_nm[walker:walker + 1]))
+            t_new, log_q_new = self.flow.sample(k, self.torch_rng)
+            torsions = current.torsions_rad.repeat(k, 1)
+            torsions[:, self.moving] = t_new
+            pos_new, log_j_new = internal_to_cartesian(
+                self.zmat, current.bonds_nm.repeat(k, 1), current.angles_rad.repeat(k, 1), torsions)
+            log_q_cur = float(self.flow.log_prob(current.torsions_rad[:, self.moving])[0])
+        pos_new = pos_new.numpy()
+        log_q_new, log_j_new = log_q_new.numpy(), log_j_new.numpy()
+        mask = self.guard(pos_new)
+        rejected_by = np.where(mask.clash, REJECT_CLASH, np.where(mask.stereo, REJECT_STEREO, REJECT_NONE))
+        energy = np.full(k, np.nan)
+        ok = rejected_by == REJECT_NONE
+        if ok.any():
+            energy[ok] = self.evaluator.energies_kj(pos_new[ok])
+        rejected_by[ok & ~np.isfinite(energy)] = REJECT_CLASH
+        accepted = np.zeros(k, dtype=bool)
+        u_cur = self.energies_kj[walker] / kT
+        log_u = np.log(self.rng.random(k))
+        for i in np.flatnonzero(rejected_by == REJECT_NONE):
+            # J(q') = J(q): bonds and angles are kept (see hopwell.moves).
+            log_alpha = -(energy[i] / kT - u_cur) + (log_q_cur - log_q_new[i])
+            if log_u[i] < log_alpha:
+                accepted[i] = True
+                u_cur, log_q_cur = energy[i] / kT, log_q_new[i]
+                self.positions_nm[walker], self.energies_kj[walker] = pos_new[i], energy[i]
+        stats = self.stats["production" if self.production else "training"]
+        stats.proposed += k
+        stats.accepted += int(accepted.sum())
+        stats.clash += int((rejected_by == REJECT_CLASH).sum())
+        stats.stereo += int((rejected_by == REJECT_STEREO).sum())
+        stats.recent.append((int(accepted.sum()), k))
+        return {
+            "positions_nm": pos_new.astype(np.float32), "energy_kj": energy, "log_q": log_q_new,
+            "log_jacobian": log_j_new, "walker": np.full(k, walker, np.int32),
+            "cycle": np.full(k, self.cycle, np.int64), "accepted": accepted,
+            "rejected_by": rejected_by.astype(np.int8),
+        }
+
+    def _fit(self) -> None:
+        """Refit base and splines on the buffer; undo the refit if the flow diverges."""
+        data = torch.as_tensor(np.stack(self.buffer))
+        saved = (copy.deepcopy(self.flow.state_dict()), copy.deepcopy(self.optimizer.state_dict()))
+        self.flow.refit_base(data.numpy())
+        loss = float("nan")
+        for _ in range(self.settings.fit_steps):
+            index = torch.as_tensor(self.rng.integers(0, len(data), self.settings.fit_batch))
+            loss = self.flow.fit_step(self.optimizer, data[index])
+        with torch.no_grad():
+            check = self.flow.log_prob(data[torch.as_tensor(self.rng.integers(0, len(data), 512))])
+        if not (math.isfinite(loss) and torch.isfinite(check).all()):
+            self.flow.load_state_dict(saved[0])
+            self.optimizer.load_state_dict(saved[1])
+            self.store.log(f"cycle {self.cycle}: flow refit diverged (loss {loss}); rolled back")
+
+    def run_cycle(self) -> None:
+        """One cycle over all walkers; queues the records for the next chunk."""
+        production = self.production
+        states = {k: [] for k in ("positions_nm", "energy_kj", "walker", "cycle", "move", "accepted", "production")}
+        proposals = []
+        for walker in range(self.n_walkers):
+            self._langevin(walker)
+            self._record_state(states, walker, MOVE_LANGEVIN, production)
+            block = self._propose(walker)
+            if production:
+                proposals.append(block)
+            self._record_state(states, walker, MOVE_FLOW, production, accepted=bool(block["accepted"].any()))
+        if not production:
+            with torch.no_grad():
+                ic = cartesian_to_internal(self.zmat, torch.as_tensor(np.stack(states["positions_nm"]), dtype=torch.float64))
+            self.buffer.extend(ic.torsions_rad[:, self.moving].numpy())
+        else:
+            self.production_samples += len(states["walker"])
+        self._pending.append((states, _concat(proposals)))
+        self.cycle += 1
+        if not production and self.cycle % self.settings.fit_every == 0:
+            self._fit()
+
+    def _record_state(self, states, walker, move, production, accepted=True) -> None:
+        states["positions_nm"].append(self.positions_nm[walker].astype(np.float32))
+        states["energy_kj"].append(self.energies_kj[walker])
+        states["walker"].append(walker)
+        states["cycle"].append(self.cycle)
+        states["move"].append(move)
+        states["accepted"].append(accepted)
+        states["production"].append(production)
+
+    # -- persistence ----------------------------------------------------------------------
+    def flush(self) -> None:
+        """Write queued cycles as one chunk, then the checkpoint that counts it."""
+        if self._pending:
+            states = {k: np.concatenate([np.asarray(s[k]) for s, _ in self._pending])
+                      for k in self._pending[0][0]}
+            proposals = _concat([p for _, p in self._pending if p])
+            self.store.write_chunk(self.next_chunk, states, proposals)
+            self.next_chunk += 1
+            self._pending = []
+        flow_path = self.store.flow_path(self.cycle)
+        torch.save({"flow": self.flow.state_dict(), "optimizer": self.optimizer.state_dict()}, flow_path)
+        stats = {k: asdict(v) | {"recent": list(v.recent)} for k, v in self.stats.items()}
+        self.store.write_state({
+            "cycle": np.int64(self.cycle), "next_chunk": np.int64(self.next_chunk),
+            "training_end_cycle": np.int64(self.training_end_cycle),
+            "elapsed_s": np.float64(self.elapsed_s),
+            "production_samples": np.int64(self.production_samples),
+            "positions_nm": self.positions_nm, "energies_kj": self.energies_kj,
+            "flow_file": np.str_(flow_path.name),
+            "rng": np.str_(json.dumps(self.rng.bit_generator.state)),
+            "torch_rng": self.torch_rng.get_state().numpy(),
+            "stats": np.str_(json.dumps(stats)),
+        })
+        self.store.prune_flows(keep=flow_path)
+
+    def restore(self, state: dict) -> None:
+        """Continue from a checkpoint: drop chunks it does not count, reload everything else."""
+        self.cycle = int(state["cycle"])
+        self.training_end_cycle = int(state["training_end_cycle"])
+        self.elapsed_s = float(state["elapsed_s"])
+        self.next_chunk = int(state["next_chunk"])
+        self.production_samples = int(state["production_samples"])
+        removed = self.store.discard_chunks_from(self.next_chunk)
+        if removed:
+            self.store.log(f"resume: removed {removed} chunk(s) written after the last checkpoint")
+        self.positions_nm = np.array(state["positions_nm"])
+        self.energies_kj = np.array(state["energies_kj"])
+        saved = torch.load(self.store.path / str(state["flow_file"]), weights_only=True)
+        self.flow.load_state_dict(saved["flow"])
+        self.optimizer.load_state_dict(saved["optimizer"])
+        self.rng.bit_generator.state = json.loads(str(state["rng"]))
+        self.torch_rng.set_state(torch.from_numpy(np.array(state["torch_rng"])))
+        self.evaluator.rng = np.random.default_rng(int(self.rng.integers(2**62)))
+        for name, values in json.loads(str(state["stats"])).items():
+            recent = values.pop("recent")
+            self.stats[name] = CycleStats(**values, recent=deque(map(tuple, recent), maxlen=20))
+        if not self.production:  # rebuild the training buffer from the recorded training states
+            for chunk in self.store.iter_chunks(upto=self.next_chunk):
+                pos = chunk["state_positions_nm"][~chunk["state_production"].astype(bool)]
+                if len(pos):
+                    with torch.no_grad():
+                        ic = cartesian_to_internal(self.zmat, torch.as_tensor(pos, dtype=torch.float64))
+                    self.buffer.extend(ic.torsions_rad[:, self.moving].numpy())
+
+    # -- the loop -------------------------------------------------------------------------
+    def request_stop(self, *_args) -> None:
+        """Finish the current cycle, write a final checkpoint and return (SIGINT/SIGTERM)."""
+        self._stop = True
+
+    def run(self, budget: Budget, progress=None) -> None:
+        """Run cycles until the budget is spent or a stop is requested; checkpoint at the end.
+
+        Parameters
+        ----------
+        budget : Budget
+        progress : callable, optional
+            Called as ``progress(sampler)`` after each cycle.
+        """
+        previous = {sig: signal.signal(sig, self.request_stop) for sig in (signal.SIGINT, signal.SIGTERM)}
+        try:
+            if self.cycle == 0 and self.next_chunk == 0:
+                self.flush()  # checkpoint zero: resume works even before the first chunk
+            self._maybe_end_training()
+            while not self._stop and not budget.done(self.production_samples, self.elapsed_s):
+                start = time.perf_counter()
+                self.run_cycle()
+                self.elapsed_s += time.perf_counter() - start
+                self._maybe_end_training()
+                if progress is not None:
+                    progress(self)
+                if self.cycle % self.settings.cycles_per_chunk == 0:
+                    self.flush()
+            self.flush()
+        finally:
+            for sig, handler in previous.items():
+                signal.signal(sig, handler)
+
+
+def _concat(blocks: list[dict]) -> dict:
+    if not blocks:
+        return {}
+    return {k: np.concatenate([b[k] for b in blocks]) for k in blocks[0]}
