@@ -204,6 +204,7 @@ def _progress_printer():
         phase = "production" if sampler.production else "training"
         stats = sampler.stats[phase]
         line = (f"cycle {sampler.cycle} {phase} elapsed {sampler.elapsed_s / 60:.1f} min"
+                f" one-torsion acceptance {sampler.stats['single'].acceptance():.3f}"
                 f" flow acceptance {stats.recent_acceptance():.3f}"
                 f" samples {sampler.production_samples}")
         click.echo(("\r" + line) if tty else line, err=True, nl=not tty)
@@ -269,6 +270,66 @@ def resume(run_dir, hours, samples):
     sampler = resume_run(Path(run_dir), budget, progress=_progress_printer())
     click.echo(f"\nrun finished at cycle {sampler.cycle}: {sampler.production_samples} production"
                f" samples in {run_dir}", err=True)
+
+
+@main.command()
+@click.argument("run_dir", type=click.Path(file_okay=False))
+@click.option("--json", "as_json", is_flag=True, help="Print summary.json to stdout.")
+@_fail_cleanly
+def report(run_dir, as_json):
+    """Analyse RUN_DIR: populations, intervals, verdict; writes report.html and friends.
+
+    \b
+    Example:
+      hopwell report dipeptide --json
+    """
+    from hopwell.report import analyse, format_table, write_report
+
+    summary = analyse(Path(run_dir))
+    page = write_report(Path(run_dir), summary)
+    if as_json:
+        click.echo(json.dumps(summary, indent=2))
+        return
+    click.echo(format_table(summary))
+    click.echo(f"report: {page}")
+
+
+@main.command()
+@click.option("-o", "--output", "run_dir", default="hopwell-demo", show_default=True,
+              type=click.Path(file_okay=False), help="Run directory to create.")
+@click.option("--minutes", type=float, default=4.0, show_default=True, help="Sampling budget.")
+@_fail_cleanly
+def demo(run_dir, minutes):
+    """Run the whole job on the shipped demo molecule (systems/demo_amide.sdf).
+
+    \b
+    Example:
+      hopwell demo -o demo-run
+    """
+    import torch
+
+    from hopwell.report import analyse, format_table, write_report
+    from hopwell.run import start_run
+    from hopwell.sampler import Budget, SamplerSettings
+    from hopwell.systems.builder import BuildOptions
+
+    spec = str(_systems_dir() / "demo_amide.sdf")
+    torch.set_num_threads(1)
+    settings = SamplerSettings(langevin_steps=200, proposals_per_cycle=32, training_cycles=10**9,
+                               training_seconds=0.3 * minutes * 60.0)
+    click.echo(f"hopwell demo: {spec}, {minutes:g} minutes of sampling", err=True)
+    start_run(spec, Path(run_dir), BuildOptions(), settings, Budget(seconds=minutes * 60.0),
+              progress=_progress_printer())
+    summary = analyse(Path(run_dir))
+    page = write_report(Path(run_dir), summary)
+    click.echo("")
+    click.echo(format_table(summary))
+    click.echo(f"report: {page}")
+
+
+def _systems_dir() -> Path:
+    """The shipped systems: beside the package in a source checkout."""
+    return Path(__file__).resolve().parents[2] / "systems"
 
 
 if __name__ == "__main__":  # pragma: no cover

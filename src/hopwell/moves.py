@@ -124,6 +124,33 @@ class TorsionFlow(torch.nn.Module):
         t = torch.remainder(t + np.pi, 2 * np.pi) - np.pi
         return t, log_q
 
+    def _marginal(self) -> tuple[torch.Tensor, ...]:
+        """The base mixture's (loc, kappa, logits), each ``(n_moving, n_components)``."""
+        base = self.flow.base
+        return base._0, base._1, base._2
+
+    def marginal_log_prob(self, index: torch.Tensor, torsions_rad: torch.Tensor) -> torch.Tensor:
+        """log of the base's one-torsion marginal q_i(t), for torsions ``index`` (shape ``(n,)``)."""
+        loc, kappa, logits = (a[index] for a in self._marginal())
+        return _mixture(loc, kappa, logits).base_dist.log_prob(torch.as_tensor(torsions_rad, dtype=torch.float64))
+
+    def marginal_sample(self, index: torch.Tensor, generator: torch.Generator | None = None) -> torch.Tensor:
+        """One draw from the base's marginal of each torsion in ``index`` (shape ``(n,)``)."""
+        loc, kappa, logits = (a[index] for a in self._marginal())
+        pick = torch.multinomial(torch.softmax(logits, -1), 1, generator=generator)[:, 0]
+        rows = torch.arange(len(index))
+        mixture = _mixture(loc[rows, pick][:, None], kappa[rows, pick][:, None],
+                           torch.zeros(len(index), 1, dtype=torch.float64))
+        if generator is not None:
+            state = torch.get_rng_state()
+            torch.manual_seed(int(torch.randint(0, 2**62, (1,), generator=generator)))
+        try:
+            value = mixture.sample()
+        finally:
+            if generator is not None:
+                torch.set_rng_state(state)
+        return torch.remainder(value + np.pi, 2 * np.pi) - np.pi
+
     def fit_step(self, optimizer: torch.optim.Optimizer, torsions_rad: torch.Tensor) -> float:
         """One maximum-likelihood step on a batch; returns the mean negative log-likelihood."""
         loss = -self.log_prob(torsions_rad).mean()

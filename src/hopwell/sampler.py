@@ -61,7 +61,10 @@ class SamplerSettings:
     langevin_steps : int
         Steps per Langevin segment.
     proposals_per_cycle : int
-        Flow proposals per walker per cycle.
+        Flow proposals (all moving torsions at once) per walker per cycle.
+    single_moves_per_cycle : int
+        One-torsion proposals per walker per cycle, each from the base's marginal of one
+        randomly chosen moving torsion (see :meth:`Sampler._single_moves`).
     training_cycles : int
         Most cycles of the training phase; production follows with the flow frozen.
     training_seconds : float or None
@@ -82,6 +85,7 @@ class SamplerSettings:
     friction_per_ps: float = 1.0
     langevin_steps: int = 250
     proposals_per_cycle: int = 32
+    single_moves_per_cycle: int = 16
     training_cycles: int = 200
     training_seconds: float | None = None
     fit_every: int = 4
@@ -183,7 +187,7 @@ class Sampler:
         self.elapsed_s = 0.0
         self.next_chunk = 0
         self.buffer: deque = deque(maxlen=settings.buffer_size)
-        self.stats = {"training": CycleStats(), "production": CycleStats()}
+        self.stats = {"training": CycleStats(), "production": CycleStats(), "single": CycleStats()}
         self.production_samples = 0
         self._stop = False
         self._pending: list[tuple[dict, dict]] = []
@@ -261,6 +265,44 @@ class Sampler:
             "rejected_by": rejected_by.astype(np.int8),
         }
 
+    def _single_moves(self, walker: int) -> None:
+        """One-torsion moves: redraw one moving torsion from its base marginal q_i, keep the rest.
+
+        The MH ratio is ``exp(-u(x') + u(x)) q_i(t_i) / q_i(t_i')`` (an independence proposal
+        for t_i given everything else; J is unchanged). Proposals are scored in batches built
+        from the current state; after an acceptance the rest are rebuilt from the new state.
+        """
+        remaining = self.settings.single_moves_per_cycle
+        stats = self.stats["single"]
+        kT = self.evaluator.kT
+        moving = torch.as_tensor(self.moving)
+        while remaining > 0:
+            with torch.no_grad():
+                current = cartesian_to_internal(self.zmat, torch.as_tensor(self.positions_nm[walker:walker + 1]))
+                index = torch.as_tensor(self.rng.integers(0, len(self.moving), remaining))
+                new = self.flow.marginal_sample(index, self.torch_rng)
+                torsions = current.torsions_rad.repeat(remaining, 1)
+                rows, cols = torch.arange(remaining), moving[index]
+                old = torsions[rows, cols].clone()
+                torsions[rows, cols] = new
+                positions, _ = internal_to_cartesian(
+                    self.zmat, current.bonds_nm.repeat(remaining, 1), current.angles_rad.repeat(remaining, 1), torsions)
+                log_q_ratio = (self.flow.marginal_log_prob(index, old) - self.flow.marginal_log_prob(index, new)).numpy()
+            positions = positions.numpy()
+            ok = ~np.asarray(self.guard(positions).rejected)
+            energy = np.full(remaining, np.inf)
+            if ok.any():
+                energy[ok] = self.evaluator.energies_kj(positions[ok])
+            log_u = np.log(self.rng.random(remaining))
+            log_alpha = -(energy - self.energies_kj[walker]) / kT + log_q_ratio
+            hits = np.flatnonzero(np.isfinite(energy) & (log_u < log_alpha))
+            used = int(hits[0]) + 1 if len(hits) else remaining
+            stats.proposed += used
+            if len(hits):
+                stats.accepted += 1
+                self.positions_nm[walker], self.energies_kj[walker] = positions[hits[0]], energy[hits[0]]
+            remaining -= used
+
     def _fit(self) -> None:
         """Refit base and splines on the buffer; undo the refit if the flow diverges."""
         data = torch.as_tensor(np.stack(self.buffer))
@@ -286,6 +328,8 @@ class Sampler:
             self._langevin(walker)
             self._record_state(states, walker, MOVE_LANGEVIN, production)
             block = self._propose(walker)
+            if self.settings.single_moves_per_cycle:
+                self._single_moves(walker)
             if production:
                 proposals.append(block)
             self._record_state(states, walker, MOVE_FLOW, production, accepted=bool(block["accepted"].any()))

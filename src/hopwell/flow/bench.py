@@ -5,14 +5,15 @@ Run from the repository root (about 4 minutes on 2 cores; ``--quick`` takes unde
     PYTHONPATH=src python -m hopwell.flow.bench [--quick]
 
 For Ace-Ala-NMe (Amber ff14SB, vacuum) and lacosamide (MMFF94, vacuum, 8 rotatable bonds) it
-draws a plain Langevin sample at 300 K from the seeds and splits every seed's trajectory into
-blocks of BLOCK_FRAMES frames: two in eight are held out for the test, one in eight validates.
-It fits one flow on each base with the same budget (TRAIN_STEPS Adam steps, keeping the state
-of best validation likelihood, checked every VALIDATE_EVERY steps) and prints, per flow: the
-time to draw and score 1000 proposals (sample, log_prob, internal_to_cartesian), the time per
-training step, the held-out mean log-likelihood of the base and of the trained flow (nats per
-conformer, internal coordinates) and the acceptance rate of an independence Metropolis chain
-with the flow as proposal, started from a held-out conformer. The chain's target in internal
+draws a plain Langevin sample at 300 K from the seeds and splits the frames, seed after seed,
+into blocks of BLOCK_FRAMES: two blocks in eight are held out for the test, one in eight
+validates. One flow is fitted on each base with the same budget (400 Adam steps, 60 with
+``--quick``; the state of best validation likelihood, checked every VALIDATE_EVERY steps, is
+kept). Per flow the table gives the time to draw and score 1000 proposals (sample, log_prob,
+internal_to_cartesian), the time per training step, the step kept, the held-out mean
+log-likelihood of the base and of the flow (nats per conformer, internal coordinates) and the
+acceptance rate of an independence Metropolis chain of 1000 flow proposals started from a
+held-out conformer. The chain's target in internal
 coordinates is ``exp(-u(x)) J(x)`` (see :func:`hopwell.internal.internal_to_cartesian`).
 """
 
@@ -97,8 +98,8 @@ def benchmark(name: str, spec: str, n_frames: int, train_steps: int, seed: int) 
     zmat = zmatrix_of(molsys)
     evaluator = EnergyEvaluator(molsys.system, TEMPERATURE_K, seed=seed + 1)
     trajectories = langevin_frames(evaluator, molsys.seeds_nm, n_frames)
-    block = np.concatenate([(np.arange(len(traj)) // BLOCK_FRAMES) % 8 for traj in trajectories])
     frames = np.concatenate(trajectories)
+    block = (np.arange(len(frames)) // BLOCK_FRAMES) % 8
     coords = cartesian_to_internal(zmat, frames[~np.isin(block, (3, 5, 7))])
     x_train = pack(coords)
     x_val, x_test = (pack(cartesian_to_internal(zmat, frames[np.isin(block, b)])) for b in ((5,), (3, 7)))

@@ -81,8 +81,8 @@ class _Coupling(torch.nn.Module):
         params = self.net(features)
         k = self.bins
         n_circ = 3 * k * len(self.circ_idx)
-        circ = params[:, :n_circ].reshape(len(x), -1, 3 * k)
-        lin = params[:, n_circ:].reshape(len(x), -1, 3 * k - 1)
+        circ = params[:, :n_circ].reshape(len(x), len(self.circ_idx), 3 * k)
+        lin = params[:, n_circ:].reshape(len(x), len(self.lin_idx), 3 * k - 1)
         return (_CircularSpline(circ[..., :k], circ[..., k:2 * k], circ[..., 2 * k:]),
                 MonotonicRQSTransform(lin[..., :k], lin[..., k:2 * k], lin[..., 2 * k:],
                                       bound=SPLINE_BOUND, slope=MIN_SLOPE))

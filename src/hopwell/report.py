@@ -1,0 +1,233 @@
+"""From a run directory to the population table, the verdict and the files behind them.
+
+The store is read chunk by chunk; only dihedrals, energies and bookkeeping are kept in memory
+(never all positions), plus the lowest-energy structure of each state.
+"""
+
+from __future__ import annotations
+
+import base64
+import csv
+import html
+import io
+import json
+from dataclasses import dataclass
+from pathlib import Path
+
+import mdtraj as md
+import numpy as np
+from rdkit import Chem
+
+from hopwell import states as st
+from hopwell import stats
+from hopwell.atomic import atomic_write_bytes
+from hopwell.energy import kT_kj
+from hopwell.errors import InputError
+from hopwell.store import RunStore
+
+KJ_PER_KCAL = 4.184
+RHAT_MAX = 1.01  # Vehtari et al. 2021 recommend trusting estimates only below 1.01
+MIN_TRANSITIONS = 10  # per populated state, pooled over walkers (common practice, chosen)
+MIN_ESS = 100
+
+
+@dataclass
+class Production:
+    """What the report needs from the production samples, gathered in one pass."""
+
+    dihedrals_rad: np.ndarray  # (n, n_torsions)
+    energy_kj: np.ndarray
+    walker: np.ndarray
+    order: np.ndarray  # (cycle * 2 + move): time order within a walker
+    flow_proposed: int
+    flow_accepted: int
+
+
+def _gather(store: RunStore, topology: md.Topology, torsions) -> Production:
+    parts = {k: [] for k in ("d", "e", "w", "o")}
+    proposed = accepted = 0
+    for chunk in store.iter_chunks():
+        keep = chunk["state_production"].astype(bool)
+        if keep.any():
+            parts["d"].append(st.dihedrals(chunk["state_positions_nm"][keep], topology, torsions))
+            parts["e"].append(chunk["state_energy_kj"][keep])
+            parts["w"].append(chunk["state_walker"][keep])
+            parts["o"].append(chunk["state_cycle"][keep] * 2 + chunk["state_move"][keep])
+        if "proposal_accepted" in chunk:
+            proposed += len(chunk["proposal_accepted"])
+            accepted += int(chunk["proposal_accepted"].sum())
+    if not parts["e"]:
+        raise InputError(f"{store.path}: no production samples yet; let the run go on or resume it")
+    return Production(*(np.concatenate(parts[k]) for k in ("d", "e", "w", "o")), proposed, accepted)
+
+
+def _series(values: np.ndarray, production: Production) -> np.ndarray:
+    """Per-walker time series, shape ``(n_walkers, n_per_walker)`` (walkers truncated to equal)."""
+    walkers = np.unique(production.walker)
+    rows = []
+    for w in walkers:
+        mask = production.walker == w
+        rows.append(values[mask][np.argsort(production.order[mask], kind="stable")])
+    n = min(len(r) for r in rows)
+    return np.stack([r[:n] for r in rows])
+
+
+def _state_model(store: RunStore, mol: Chem.Mol, topology: md.Topology):
+    if store.config().get("kind") == "peptide":
+        model = st.backbone_model(topology)
+        if model is not None:
+            return model, None
+    return None, st.state_torsions(mol)
+
+
+def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000) -> dict:
+    """Populations, free energies, diagnostics and the verdict of a run (the summary dict)."""
+    store = RunStore.open(Path(run_dir))
+    config = store.config()
+    mol = next(iter(Chem.SDMolSupplier(str(store.path / "molecule.sdf"), removeHs=False)))
+    topology = md.load_topology(str(store.path / "topology.pdb"))
+    model, torsions = _state_model(store, mol, topology)
+    production = _gather(store, topology, model.torsions if model else torsions)
+    if model is None:
+        model = st.torsion_model(mol, production.dihedrals_rad)
+    labels = model.assign(production.dihedrals_rad)
+    series = _series(labels, production)
+    n_states = len(model.names)
+    rng = np.random.default_rng(rng_seed)
+    pops = stats.population_estimate(series, n_states, rng, n_boot=n_boot)
+    temperature = float(config["sampler"]["temperature_K"])
+    kT = kT_kj(temperature)
+    dg = stats.free_energy_differences(pops, kT)
+
+    reasons = []
+    n_walkers = series.shape[0]
+    seen_by = [(series == s).any(axis=1).sum() for s in range(n_states)]
+    transitions = sum(stats.count_transitions(row) for row in series)
+    rhats = {}
+    for s in range(n_states):
+        if pops.populations[s] < st.POPULATION_FLOOR:
+            continue
+        indicator = (series == s).astype(float)
+        if series.shape[1] >= 4 and 0 < indicator.mean() < 1:
+            rhats[model.names[s]] = float(stats.split_rhat(indicator))
+        if n_walkers > 1 and seen_by[s] == 1:
+            reasons.append(f"state {model.names[s]} was seen by one walker only")
+    bad = {k: v for k, v in rhats.items() if not np.isfinite(v) or v > RHAT_MAX}
+    if bad:
+        worst = max(bad, key=lambda k: bad[k])
+        reasons.append(f"split R-hat {bad[worst]:.3f} > {RHAT_MAX} for state {worst}")
+    populated = int((pops.populations >= st.POPULATION_FLOOR).sum())
+    if populated > 1 and transitions < MIN_TRANSITIONS * populated:
+        reasons.append(f"only {transitions} transitions between states")
+    if pops.ess < MIN_ESS:
+        reasons.append(f"effective sample size {pops.ess:.0f} < {MIN_ESS}")
+    summary = {
+        "temperature_K": temperature,
+        "verdict": "not converged" if reasons else "converged",
+        "reasons": reasons,
+        "state_model": model.kind,
+        "states": [
+            {
+                "name": name,
+                "population": float(pops.populations[s]),
+                "ci95": [float(pops.lower[s]), float(pops.upper[s])],
+                "dG_kJ_per_mol": float(dg.values[s]),
+                "dG_ci95": [float(dg.lower[s]), float(dg.upper[s])],
+                "dG_kcal_per_mol": float(dg.values[s] / KJ_PER_KCAL),
+                "walkers_seen": int(seen_by[s]),
+            }
+            for s, name in enumerate(model.names)
+        ],
+        "dG_reference": model.names[int(dg.reference)],
+        "samples": int(series.size),
+        "effective_samples": float(pops.ess),
+        "statistical_inefficiency": float(pops.statistical_inefficiency),
+        "walkers": int(n_walkers),
+        "transitions": int(transitions),
+        "split_rhat": rhats,
+        "flow_acceptance_production": (production.flow_accepted / production.flow_proposed
+                                       if production.flow_proposed else None),
+    }
+    return summary
+
+
+def write_report(run_dir: Path, summary: dict) -> Path:
+    """Write ``summary.json``, ``populations.csv`` and ``report.html`` into the run directory."""
+    run_dir = Path(run_dir)
+    atomic_write_bytes(run_dir / "summary.json", json.dumps(summary, indent=2).encode())
+    out = io.StringIO()
+    writer = csv.writer(out)
+    writer.writerow(["state", "population", "ci95_low", "ci95_high", "dG_kJ_per_mol",
+                     "dG_ci95_low", "dG_ci95_high"])
+    for s in summary["states"]:
+        writer.writerow([s["name"], f"{s['population']:.5f}", f"{s['ci95'][0]:.5f}",
+                         f"{s['ci95'][1]:.5f}", f"{s['dG_kJ_per_mol']:.3f}",
+                         f"{s['dG_ci95'][0]:.3f}", f"{s['dG_ci95'][1]:.3f}"])
+    atomic_write_bytes(run_dir / "populations.csv", out.getvalue().encode())
+    atomic_write_bytes(run_dir / "report.html", _html(summary).encode())
+    return run_dir / "report.html"
+
+
+def _population_plot(summary: dict) -> str:
+    """A bar chart of populations with 95% intervals, as a base64 PNG."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    shown = [s for s in summary["states"] if s["population"] > 0 or s["name"] != "other"]
+    fig, ax = plt.subplots(figsize=(max(4, 0.9 * len(shown) + 2), 3.2), dpi=100)
+    p = np.array([s["population"] for s in shown]) * 100
+    lo = p - np.array([s["ci95"][0] for s in shown]) * 100
+    hi = np.array([s["ci95"][1] for s in shown]) * 100 - p
+    ax.bar(range(len(shown)), p, yerr=[lo, hi], capsize=4, color="#4c78a8")
+    ax.set_xticks(range(len(shown)), [s["name"] for s in shown], rotation=30, ha="right")
+    ax.set_ylabel("population (%)")
+    ax.set_title("Populations with 95% intervals")
+    fig.tight_layout()
+    buffer = io.BytesIO()
+    fig.savefig(buffer, format="png")
+    plt.close(fig)
+    return base64.b64encode(buffer.getvalue()).decode()
+
+
+def _html(summary: dict) -> str:
+    verdict = summary["verdict"]
+    colour = "#2e7d32" if verdict == "converged" else "#c62828"
+    reasons = "".join(f"<li>{html.escape(r)}</li>" for r in summary["reasons"])
+    rows = "".join(
+        f"<tr><td>{html.escape(s['name'])}</td><td>{100 * s['population']:.1f}</td>"
+        f"<td>{100 * s['ci95'][0]:.1f} - {100 * s['ci95'][1]:.1f}</td>"
+        f"<td>{s['dG_kJ_per_mol']:.2f}</td><td>{s['dG_ci95'][0]:.2f} - {s['dG_ci95'][1]:.2f}</td></tr>"
+        for s in summary["states"]
+    )
+    acceptance = summary["flow_acceptance_production"]
+    return f"""<!DOCTYPE html>
+<html lang="en"><head><meta charset="utf-8"><title>hopwell report</title>
+<style>body{{font-family:sans-serif;max-width:900px;margin:2em auto;color:#222}}
+table{{border-collapse:collapse}}td,th{{border:1px solid #ccc;padding:4px 10px;text-align:right}}
+td:first-child,th:first-child{{text-align:left}}.verdict{{color:{colour};font-size:1.4em}}</style>
+</head><body>
+<h1>Conformer populations</h1>
+<p class="verdict" id="verdict">Verdict: {html.escape(verdict)}</p>
+<ul>{reasons}</ul>
+<p>{summary['temperature_K']:.1f} K; {summary['samples']} production samples from {summary['walkers']}
+walkers; effective samples {summary['effective_samples']:.0f}; {summary['transitions']} transitions;
+flow acceptance {"-" if acceptance is None else f"{100 * acceptance:.1f}%"}.</p>
+<table id="populations"><tr><th>state</th><th>population (%)</th><th>95% interval (%)</th>
+<th>dG (kJ/mol) vs {html.escape(summary['dG_reference'])}</th><th>dG 95% interval</th></tr>{rows}</table>
+<p><img id="population-plot" alt="populations" src="data:image/png;base64,{_population_plot(summary)}"></p>
+<p>Populations are properties of the force field and solvent model; an unconverged run
+misleads; results inform research and do not replace experiment.</p>
+</body></html>
+"""
+
+
+def format_table(summary: dict) -> str:
+    """The population table as plain text, for the terminal."""
+    lines = [f"verdict: {summary['verdict']}"] + [f"  - {r}" for r in summary["reasons"]]
+    lines.append(f"{'state':<24} {'population':>10} {'95% interval':>17} {'dG kJ/mol':>10}")
+    for s in summary["states"]:
+        lines.append(f"{s['name']:<24} {100 * s['population']:>9.1f}% "
+                     f"{100 * s['ci95'][0]:>7.1f}-{100 * s['ci95'][1]:<6.1f}% {s['dG_kJ_per_mol']:>10.2f}")
+    return "\n".join(lines)

@@ -1,0 +1,196 @@
+"""Conformer states: torsion wells found from the data, or peptide backbone regions.
+
+All functions are pure: torsion values in, state indices out. Geometry comes from mdtraj.
+
+Backbone regions (phi, psi in degrees; conventions vary, these are hopwell's):
+
+=========  ======================  ======================
+state      phi                     psi
+=========  ======================  ======================
+alphaR     [-180, 0)               [-120, 50)
+C7eq       [-180, 0)               [50, 120)
+C5/beta    [-180, -120)            [120, 180] or < -120
+PII        [-120, 0)               [120, 180] or < -120
+alphaL     [0, 180)                [0, 120)
+C7ax       [0, 180)                [120, 180] or < 0
+=========  ======================  ======================
+
+C7eq and C5 are the vacuum names of the beta-region minima, PII and alphaR the water names;
+one table serves both so that solvent models can be compared. phi > 0 holds alphaL and C7ax.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import mdtraj as md
+import numpy as np
+from rdkit import Chem
+
+from hopwell.systems.builder import rotatable_bonds
+
+BACKBONE_STATES = ("C7eq", "C5/beta", "PII", "alphaR", "C7ax", "alphaL")
+N_BINS = 72  # 5-degree histogram bins for the torsion marginals
+SMOOTH_DEG = 15.0  # width of the wrapped Gaussian smoothing the marginals
+MIN_WELL_MASS = 0.01  # wells with less pooled mass are merged into a neighbour
+POPULATION_FLOOR = 0.005  # combinations below this are reported together as "other"
+
+
+def backbone_state(phi_deg: np.ndarray, psi_deg: np.ndarray) -> np.ndarray:
+    """Backbone region index (into :data:`BACKBONE_STATES`) for each (phi, psi), degrees."""
+    phi, psi = np.asarray(phi_deg), np.asarray(psi_deg)
+    extended = (psi >= 120) | (psi < -120)
+    out = np.full(phi.shape, BACKBONE_STATES.index("alphaR"))
+    left = phi < 0
+    out[left & (psi >= 50) & (psi < 120)] = BACKBONE_STATES.index("C7eq")
+    out[left & extended & (phi < -120)] = BACKBONE_STATES.index("C5/beta")
+    out[left & extended & (phi >= -120)] = BACKBONE_STATES.index("PII")
+    out[~left & (psi >= 0) & (psi < 120)] = BACKBONE_STATES.index("alphaL")
+    out[~left & ((psi >= 120) | (psi < 0))] = BACKBONE_STATES.index("C7ax")
+    return out
+
+
+def state_torsions(mol: Chem.Mol) -> list[tuple[tuple[int, int, int, int], int]]:
+    """One heavy-atom dihedral per rotatable bond, with its symmetry period (1 or 2).
+
+    The period is 2 when the far atom's two other heavy neighbours are symmetry-equivalent
+    (a para-substituted phenyl ring, a carboxylate): the torsion is then folded onto
+    [-90, 90) degrees so that equivalent orientations are one conformer.
+    """
+    ranks = list(Chem.CanonicalRankAtoms(mol, breakTies=False))
+    out = []
+    for j, k in rotatable_bonds(mol):
+        ends = []
+        for centre, other in ((j, k), (k, j)):
+            nbrs = sorted(a.GetIdx() for a in mol.GetAtomWithIdx(centre).GetNeighbors()
+                          if a.GetAtomicNum() > 1 and a.GetIdx() != other)
+            ends.append(nbrs)
+        period = 1
+        for nbrs in ends:
+            if len(nbrs) == 2 and ranks[nbrs[0]] == ranks[nbrs[1]]:
+                period = 2
+        out.append(((ends[0][0], j, k, ends[1][0]), period))
+    return out
+
+
+def fold(torsion_rad: np.ndarray, period: int) -> np.ndarray:
+    """Map a torsion onto one symmetry copy: [-pi, pi) / period."""
+    span = 2 * np.pi / period
+    return (np.asarray(torsion_rad) + span / 2) % span - span / 2
+
+
+def well_edges(torsion_rad: np.ndarray, period: int = 1) -> np.ndarray:
+    """Boundaries (rad) between wells of a torsion's pooled marginal, sorted; empty if one well.
+
+    The marginal is histogrammed on the folded circle, smoothed with a wrapped Gaussian, and
+    split at its local minima; wells holding less than ``MIN_WELL_MASS`` are merged.
+    """
+    x = fold(torsion_rad, period)
+    span = 2 * np.pi / period
+    hist, edges = np.histogram(x, bins=N_BINS, range=(-span / 2, span / 2))
+    centres = 0.5 * (edges[1:] + edges[:-1])
+    width_bins = np.deg2rad(SMOOTH_DEG) / (span / N_BINS) / period
+    offsets = np.arange(-N_BINS // 2, N_BINS // 2)
+    kernel = np.exp(-0.5 * (offsets / max(width_bins, 1e-9)) ** 2)
+    smooth = np.real(np.fft.ifft(np.fft.fft(hist) * np.fft.fft(np.fft.ifftshift(kernel))))
+    minima = [i for i in range(N_BINS)
+              if smooth[i] < smooth[i - 1] and smooth[i] <= smooth[(i + 1) % N_BINS]]
+    cuts = sorted(centres[minima])
+    while len(cuts) > 1:
+        labels = np.searchsorted(cuts, x) % len(cuts)
+        mass = np.bincount(labels, minlength=len(cuts)) / len(x)
+        smallest = int(np.argmin(mass))
+        if mass[smallest] >= MIN_WELL_MASS:
+            break
+        cuts.pop(smallest)  # merge the light well with its lower neighbour
+    return np.array(cuts if len(cuts) > 1 else [])
+
+
+def assign_wells(torsion_rad: np.ndarray, edges: np.ndarray, period: int = 1) -> np.ndarray:
+    """Well index of each sample given :func:`well_edges`; wraps across the circle."""
+    if len(edges) == 0:
+        return np.zeros(np.shape(torsion_rad), dtype=int)
+    return np.searchsorted(edges, fold(torsion_rad, period)) % len(edges)
+
+
+def well_label(torsion_rad: np.ndarray, period: int = 1) -> str:
+    """A well's name: its circular mean in degrees, e.g. ``"+60"``, ``"180"``."""
+    mean = np.degrees(np.angle(np.exp(1j * period * np.asarray(torsion_rad)).mean())) / period
+    value = int(round(mean / 5.0) * 5)
+    return "180" if abs(value) == 180 else ("0" if value == 0 else f"{value:+d}")
+
+
+@dataclass(frozen=True)
+class StateModel:
+    """How samples map to named conformer states.
+
+    Attributes
+    ----------
+    kind : {"backbone", "torsions"}
+    names : tuple of str
+    torsions : tuple of (atoms, period)
+        The dihedrals used (backbone: phi and psi of each residue).
+    edges : tuple of numpy.ndarray
+        Well boundaries per torsion (torsion kind only).
+    combos : dict
+        Well-index tuple -> state index (torsion kind only); unlisted combinations are "other".
+    """
+
+    kind: str
+    names: tuple
+    torsions: tuple
+    edges: tuple = ()
+    combos: dict | None = None
+
+    def assign(self, dihedrals_rad: np.ndarray) -> np.ndarray:
+        """State index of each sample from its dihedrals, shape ``(n, n_torsions)``."""
+        if self.kind == "backbone":
+            return backbone_state(np.degrees(dihedrals_rad[:, 0]), np.degrees(dihedrals_rad[:, 1]))
+        wells = np.stack([assign_wells(dihedrals_rad[:, t], self.edges[t], self.torsions[t][1])
+                          for t in range(len(self.torsions))], axis=1)
+        other = len(self.names) - 1
+        return np.array([self.combos.get(tuple(w), other) for w in wells], dtype=int)
+
+
+def backbone_model(topology: md.Topology) -> StateModel | None:
+    """The backbone-region model for a peptide with exactly one (phi, psi) pair, else None."""
+    phi, _ = md.compute_phi(md.Trajectory(np.zeros((1, topology.n_atoms, 3)), topology))
+    psi, _ = md.compute_psi(md.Trajectory(np.zeros((1, topology.n_atoms, 3)), topology))
+    if len(phi) != 1 or len(psi) != 1:
+        return None
+    return StateModel("backbone", BACKBONE_STATES, ((tuple(phi[0]), 1), (tuple(psi[0]), 1)))
+
+
+def torsion_model(mol: Chem.Mol, dihedrals_rad: np.ndarray) -> StateModel:
+    """Conformer states as combinations of torsion wells found in the pooled samples.
+
+    Parameters
+    ----------
+    mol : rdkit.Chem.Mol
+    dihedrals_rad : numpy.ndarray, shape ``(n_samples, n_torsions)``
+        The samples' values of :func:`state_torsions` (same order).
+    """
+    torsions = state_torsions(mol)
+    if not torsions:
+        return StateModel("torsions", ("rigid", "other"), (), (), {(): 0})
+    edges = tuple(well_edges(dihedrals_rad[:, t], p) for t, (_, p) in enumerate(torsions))
+    wells = np.stack([assign_wells(dihedrals_rad[:, t], edges[t], p)
+                      for t, (_, p) in enumerate(torsions)], axis=1)
+    combos, counts = np.unique(wells, axis=0, return_counts=True)
+    order = np.argsort(-counts, kind="stable")
+    kept = [tuple(combos[i]) for i in order if counts[i] / len(wells) >= POPULATION_FLOOR]
+    names = []
+    for combo in kept:
+        members = np.all(wells == np.array(combo), axis=1)
+        names.append(" ".join(well_label(dihedrals_rad[members, t], p)
+                              for t, (_, p) in enumerate(torsions)))
+    return StateModel("torsions", tuple(names) + ("other",), tuple(torsions), edges,
+                      {c: i for i, c in enumerate(kept)})
+
+
+def dihedrals(xyz_nm: np.ndarray, topology: md.Topology, model_torsions) -> np.ndarray:
+    """Dihedrals (rad) of each frame for the given torsion list, shape ``(n_frames, n_torsions)``."""
+    if not model_torsions:
+        return np.zeros((len(xyz_nm), 0))
+    traj = md.Trajectory(np.asarray(xyz_nm, dtype=np.float32), topology)
+    return md.compute_dihedrals(traj, np.array([a for a, _ in model_torsions]))
