@@ -18,8 +18,9 @@ def test_ci_runs_the_readme_test_command():
     assert match and match.group(1) == commands[1]
 
 
-def test_first_command_runs_hopwell_on_a_shipped_system():
+def test_first_command_runs_the_demo_on_a_shipped_system():
     first = _readme_commands()[0]
-    assert "hopwell " in first
-    shipped = re.findall(r"systems/\S+", first)
-    assert shipped and all((REPO / path).exists() for path in shipped)
+    assert first.endswith("hopwell demo")
+    cli = (REPO / "src" / "hopwell" / "cli.py").read_text()
+    shipped = re.findall(r'_systems_dir\(\) / "([^"]+)"', cli)
+    assert shipped and all((REPO / "systems" / name).is_file() for name in shipped)

@@ -69,8 +69,16 @@ def start_run(spec: str, out_dir: Path, build_options: BuildOptions, settings: S
 
 
 def load_sampler(run_dir: Path) -> Sampler:
-    """A sampler restored from a run directory's newest checkpoint."""
+    """A sampler restored from a run directory's newest checkpoint.
+
+    A start killed after the directory was created but before checkpoint zero leaves no
+    state.npz and no chunks; the sampler then starts from the beginning.
+    """
     store = RunStore.open(Path(run_dir))
+    state = store.read_state()
+    if state is None and store.chunk_indices():
+        raise InputError(f"{run_dir}: sample chunks but no checkpoint (state.npz); the run"
+                         " directory is damaged")
     config = store.config()
     names = {f.name for f in fields(SamplerSettings)}
     settings = SamplerSettings(**{k: v for k, v in config["sampler"].items() if k in names})
@@ -80,9 +88,10 @@ def load_sampler(run_dir: Path) -> Sampler:
     system = openmm.XmlSerializer.deserialize(store.read_text("system.xml"))
     sampler = Sampler(mol, system, seeds_nm, settings, store, n_walkers=config["walkers"],
                       platform=config.get("platform") or None)
-    state = store.read_state()
     if state is None:
-        raise InputError(f"{run_dir}: no checkpoint yet; start the run again")
+        store.discard_chunks_from(0)  # only temp files of the interrupted start can be there
+        store.log("resume: no checkpoint yet (the start was interrupted); starting from cycle 0")
+        return sampler
     sampler.restore(state)
     return sampler
 

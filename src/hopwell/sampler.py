@@ -25,6 +25,7 @@ is recorded as production. See :mod:`hopwell.store` for the crash-safe run direc
 from __future__ import annotations
 
 import copy
+import io
 import json
 import math
 import signal
@@ -36,6 +37,7 @@ import numpy as np
 import torch
 from rdkit import Chem
 
+from hopwell.atomic import atomic_write_bytes
 from hopwell.energy import EnergyEvaluator
 from hopwell.guards import ProposalGuard
 from hopwell.internal import build_zmatrix, cartesian_to_internal, internal_to_cartesian
@@ -364,7 +366,11 @@ class Sampler:
             self.next_chunk += 1
             self._pending = []
         flow_path = self.store.flow_path(self.cycle)
-        torch.save({"flow": self.flow.state_dict(), "optimizer": self.optimizer.state_dict()}, flow_path)
+        # Atomic like every other file: a flush at the checkpoint's own cycle (the run's last
+        # one, or a resume from checkpoint zero) rewrites the flow file state.npz names.
+        buffer = io.BytesIO()
+        torch.save({"flow": self.flow.state_dict(), "optimizer": self.optimizer.state_dict()}, buffer)
+        atomic_write_bytes(flow_path, buffer.getvalue())
         stats = {k: asdict(v) | {"recent": list(v.recent)} for k, v in self.stats.items()}
         self.store.write_state({
             "cycle": np.int64(self.cycle), "next_chunk": np.int64(self.next_chunk),
