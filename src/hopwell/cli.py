@@ -275,23 +275,75 @@ def resume(run_dir, hours, samples):
 @main.command()
 @click.argument("run_dir", type=click.Path(file_okay=False))
 @click.option("--json", "as_json", is_flag=True, help="Print summary.json to stdout.")
+@click.option("--reweight-temperature", type=float, default=None,
+              help="Also give populations reweighted to this temperature (K, within 20%).")
+@click.option("--reweight-solvent", type=click.Choice(["vacuum", "obc2"]), default=None,
+              help="Also give populations reweighted to this solvent model.")
+@click.option("--reweight-forcefield", type=click.Choice(["mmff94", "mmff94s", "amber14"]),
+              default=None, help="Also give populations reweighted to this force field.")
 @_fail_cleanly
-def report(run_dir, as_json):
+def report(run_dir, as_json, reweight_temperature, reweight_solvent, reweight_forcefield):
     """Analyse RUN_DIR: populations, intervals, verdict; writes report.html and friends.
 
     \b
     Example:
       hopwell report dipeptide --json
+      hopwell report amide --reweight-solvent obc2
     """
     from hopwell.report import analyse, format_table, write_report
 
-    summary = analyse(Path(run_dir))
+    reweight = {k: v for k, v in (("temperature_K", reweight_temperature), ("solvent", reweight_solvent),
+                                  ("forcefield", reweight_forcefield)) if v is not None}
+    summary = analyse(Path(run_dir), reweight=reweight or None)
     page = write_report(Path(run_dir), summary)
     if as_json:
         click.echo(json.dumps(summary, indent=2))
         return
     click.echo(format_table(summary))
     click.echo(f"report: {page}")
+
+
+@main.command()
+@click.argument("run_dir", type=click.Path(file_okay=False))
+@click.option("--json", "as_json", is_flag=True, help="Print the status as JSON.")
+@_fail_cleanly
+def status(run_dir, as_json):
+    """Show the state of a running or finished run (reads its checkpoint; changes nothing).
+
+    \b
+    Example:
+      hopwell status dipeptide
+    """
+    from hopwell.store import RunStore
+
+    store = RunStore.open(Path(run_dir))
+    state = store.read_state()
+    if state is None:
+        raise InputError(f"{run_dir}: no checkpoint yet (the run is starting)")
+    stats = json.loads(str(state["stats"]))
+
+    def rate(name):
+        s = stats[name]
+        return s["accepted"] / s["proposed"] if s["proposed"] else None
+
+    info = {
+        "phase": "production" if int(state["training_end_cycle"]) >= 0 else "training",
+        "cycle": int(state["cycle"]),
+        "elapsed_min": float(state["elapsed_s"]) / 60.0,
+        "production_samples": int(state["production_samples"]),
+        "chunks": int(state["next_chunk"]),
+        "flow_acceptance_training": rate("training"),
+        "flow_acceptance_production": rate("production"),
+        "one_torsion_acceptance": rate("single"),
+        "budget": store.config().get("budget", {}),
+    }
+    if as_json:
+        click.echo(json.dumps(info, indent=2))
+        return
+    for key, value in info.items():
+        if isinstance(value, float):
+            value = f"{value:.3f}"
+        click.echo(f"{key.replace('_', ' '):<28} {'-' if value is None else value}")
 
 
 @main.command()

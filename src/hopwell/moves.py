@@ -95,10 +95,29 @@ class TorsionFlow(torch.nn.Module):
         if torsions_rad.shape[1] < 1:
             raise ValueError("a torsion flow needs at least one torsion")
         self.n_moving = torsions_rad.shape[1]
+        # Each zuko circular spline transform shifts the circle by pi before its spline, so an
+        # even number of transforms with zeroed output layers is exactly the identity: the
+        # untrained flow equals its physics base (measured: held-out log-likelihood -28 for an
+        # odd, randomly initialized flow against -5.7 for its base on Ace-Ala-NMe torsions).
+        transforms += transforms % 2
         self.flow = zuko.flows.NCSF(
             features=self.n_moving, transforms=transforms, bins=bins, hidden_features=(hidden, hidden)
         ).double()
         self.flow.base = UnconditionalDistribution(_mixture, *_base_parameters(torsions_rad), buffer=True)
+        self.reset_transforms()
+
+    def reset_transforms(self) -> None:
+        """Set every spline to the identity (zero the hyper-networks' output layers)."""
+        with torch.no_grad():
+            for transform in self.flow.transform.transforms:
+                last = transform.hyper[-1]
+                last.weight.zero_()
+                last.bias.zero_()
+
+    def base_log_prob(self, torsions_rad: torch.Tensor) -> torch.Tensor:
+        """log density of the base alone, shape ``(batch,)``."""
+        t = torch.remainder(torch.as_tensor(torsions_rad, dtype=torch.float64) + np.pi, 2 * np.pi) - np.pi
+        return self.flow.base().log_prob(t)
 
     def refit_base(self, torsions_rad: np.ndarray) -> None:
         """Move the base mixture onto new observations (training phase only)."""

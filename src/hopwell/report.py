@@ -23,12 +23,14 @@ from hopwell import stats
 from hopwell.atomic import atomic_write_bytes
 from hopwell.energy import kT_kj
 from hopwell.errors import InputError
+from hopwell.reweight import hamiltonian_log_weights, reweighted_populations, temperature_log_weights
 from hopwell.store import RunStore
 
 KJ_PER_KCAL = 4.184
 RHAT_MAX = 1.01  # Vehtari et al. 2021 recommend trusting estimates only below 1.01
 MIN_TRANSITIONS = 10  # per populated state, pooled over walkers (common practice, chosen)
 MIN_ESS = 100
+MIN_IS_ESS_FRACTION = 0.1  # importance ESS below 10% of proposals: weights too heavy-tailed
 
 
 @dataclass
@@ -39,13 +41,15 @@ class Production:
     energy_kj: np.ndarray
     walker: np.ndarray
     order: np.ndarray  # (cycle * 2 + move): time order within a walker
-    flow_proposed: int
+    proposal_dihedrals_rad: np.ndarray  # (m, n_torsions), frozen-flow proposals
+    proposal_log_weight: np.ndarray  # (m,) -u - log q; -inf where a guard rejected
+    proposal_block: np.ndarray  # (m,) one block per (walker, cycle)
     flow_accepted: int
 
 
-def _gather(store: RunStore, topology: md.Topology, torsions) -> Production:
-    parts = {k: [] for k in ("d", "e", "w", "o")}
-    proposed = accepted = 0
+def _gather(store: RunStore, topology: md.Topology, torsions, kT: float) -> Production:
+    parts = {k: [] for k in ("d", "e", "w", "o", "pd", "pw", "pb")}
+    accepted = 0
     for chunk in store.iter_chunks():
         keep = chunk["state_production"].astype(bool)
         if keep.any():
@@ -54,11 +58,17 @@ def _gather(store: RunStore, topology: md.Topology, torsions) -> Production:
             parts["w"].append(chunk["state_walker"][keep])
             parts["o"].append(chunk["state_cycle"][keep] * 2 + chunk["state_move"][keep])
         if "proposal_accepted" in chunk:
-            proposed += len(chunk["proposal_accepted"])
             accepted += int(chunk["proposal_accepted"].sum())
+            energy = chunk["proposal_energy_kj"]
+            ok = (chunk["proposal_rejected_by"] == 0) & np.isfinite(energy)
+            parts["pd"].append(st.dihedrals(chunk["proposal_positions_nm"], topology, torsions))
+            parts["pw"].append(np.where(ok, -np.where(ok, energy, 0.0) / kT - chunk["proposal_log_q"], -np.inf))
+            parts["pb"].append(chunk["proposal_cycle"] * 1_000_000 + chunk["proposal_walker"])
     if not parts["e"]:
         raise InputError(f"{store.path}: no production samples yet; let the run go on or resume it")
-    return Production(*(np.concatenate(parts[k]) for k in ("d", "e", "w", "o")), proposed, accepted)
+    if not parts["pd"]:
+        parts["pd"], parts["pw"], parts["pb"] = [np.zeros((0, len(torsions)))], [np.zeros(0)], [np.zeros(0, int)]
+    return Production(*(np.concatenate(parts[k]) for k in ("d", "e", "w", "o", "pd", "pw", "pb")), accepted)
 
 
 def _series(values: np.ndarray, production: Production) -> np.ndarray:
@@ -80,14 +90,27 @@ def _state_model(store: RunStore, mol: Chem.Mol, topology: md.Topology):
     return None, st.state_torsions(mol)
 
 
-def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000) -> dict:
-    """Populations, free energies, diagnostics and the verdict of a run (the summary dict)."""
+def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict | None = None) -> dict:
+    """Populations, free energies, diagnostics and the verdict of a run (the summary dict).
+
+    Parameters
+    ----------
+    run_dir : Path
+    rng_seed : int
+        Seeds the bootstrap.
+    n_boot : int
+    reweight : dict, optional
+        ``temperature_K`` and/or build overrides (``solvent``, ``forcefield``) to reweight the
+        production samples to (see :mod:`hopwell.reweight`).
+    """
     store = RunStore.open(Path(run_dir))
     config = store.config()
     mol = next(iter(Chem.SDMolSupplier(str(store.path / "molecule.sdf"), removeHs=False)))
     topology = md.load_topology(str(store.path / "topology.pdb"))
     model, torsions = _state_model(store, mol, topology)
-    production = _gather(store, topology, model.torsions if model else torsions)
+    temperature = float(config["sampler"]["temperature_K"])
+    kT = kT_kj(temperature)
+    production = _gather(store, topology, model.torsions if model else torsions, kT)
     if model is None:
         model = st.torsion_model(mol, production.dihedrals_rad)
     labels = model.assign(production.dihedrals_rad)
@@ -95,9 +118,8 @@ def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000) -> dict:
     n_states = len(model.names)
     rng = np.random.default_rng(rng_seed)
     pops = stats.population_estimate(series, n_states, rng, n_boot=n_boot)
-    temperature = float(config["sampler"]["temperature_K"])
-    kT = kT_kj(temperature)
     dg = stats.free_energy_differences(pops, kT)
+    importance = _importance(production, model, n_states, rng, n_boot)
 
     reasons = []
     n_walkers = series.shape[0]
@@ -121,6 +143,14 @@ def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000) -> dict:
         reasons.append(f"only {transitions} transitions between states")
     if pops.ess < MIN_ESS:
         reasons.append(f"effective sample size {pops.ess:.0f} < {MIN_ESS}")
+    if importance is not None:
+        apart = [model.names[s] for s in range(n_states)
+                 if importance["ci95"][s][0] > pops.upper[s] or importance["ci95"][s][1] < pops.lower[s]]
+        if apart:
+            reasons.append(f"MCMC and importance-sampling estimates disagree for {', '.join(apart)}")
+        if importance["effective_samples"] < MIN_IS_ESS_FRACTION * importance["proposals"]:
+            reasons.append(f"heavy-tailed importance weights (ESS {importance['effective_samples']:.0f}"
+                           f" of {importance['proposals']} proposals)")
     summary = {
         "temperature_K": temperature,
         "verdict": "not converged" if reasons else "converged",
@@ -145,10 +175,54 @@ def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000) -> dict:
         "walkers": int(n_walkers),
         "transitions": int(transitions),
         "split_rhat": rhats,
-        "flow_acceptance_production": (production.flow_accepted / production.flow_proposed
-                                       if production.flow_proposed else None),
+        "flow_acceptance_production": (production.flow_accepted / len(production.proposal_block)
+                                       if len(production.proposal_block) else None),
+        "importance_sampling": importance,
     }
+    if reweight:
+        summary["reweighted"] = _reweighted(store, reweight, production, series, model, pops, rng, n_boot)
     return summary
+
+
+def _reweighted(store, reweight, production, series, model, pops, rng, n_boot) -> dict:
+    temperature = float(store.config()["sampler"]["temperature_K"])
+    new_temperature = float(reweight.get("temperature_K", temperature))
+    log_w = temperature_log_weights(production.energy_kj, temperature, new_temperature) \
+        if new_temperature != temperature else np.zeros(len(production.energy_kj))
+    overrides = {k: v for k, v in reweight.items() if k != "temperature_K"}
+    if overrides:
+        log_w = log_w + hamiltonian_log_weights(store, overrides, new_temperature, production.energy_kj)
+    result = reweighted_populations(series, _series(log_w, production), len(model.names),
+                                    pops.statistical_inefficiency, rng, n_boot)
+    return {
+        "to": {"temperature_K": new_temperature, **overrides},
+        "effective_samples": float(result.ess),
+        "states": [{"name": name, "population": float(result.populations[s]),
+                    "ci95": [float(result.lower[s]), float(result.upper[s])]}
+                   for s, name in enumerate(model.names)],
+    }
+
+
+def _importance(production: Production, model, n_states: int, rng, n_boot: int) -> dict | None:
+    """The frozen flow's proposals as an importance sample, normalised per proposal block.
+
+    A flow move keeps the walker's bonds, angles and offsets r and draws torsions t from q, so
+    within one block the weights exp(-u) / q estimate p(t | r); averaging blocks over the
+    chain's r gives populations independent of the chain's torsion mixing (see
+    :func:`hopwell.stats.blockwise_importance_populations`).
+    """
+    if not len(production.proposal_block) or not np.isfinite(production.proposal_log_weight).any():
+        return None
+    labels = model.assign(production.proposal_dihedrals_rad)
+    result = stats.blockwise_importance_populations(
+        labels, production.proposal_log_weight, production.proposal_block, n_states, rng, n_boot=n_boot)
+    return {
+        "populations": [float(p) for p in result.populations],
+        "ci95": [[float(a), float(b)] for a, b in zip(result.lower, result.upper)],
+        "effective_samples": float(result.ess),
+        "proposals": int(len(labels)),
+        "blocks": int(result.n_samples),
+    }
 
 
 def write_report(run_dir: Path, summary: dict) -> Path:
@@ -230,4 +304,11 @@ def format_table(summary: dict) -> str:
     for s in summary["states"]:
         lines.append(f"{s['name']:<24} {100 * s['population']:>9.1f}% "
                      f"{100 * s['ci95'][0]:>7.1f}-{100 * s['ci95'][1]:<6.1f}% {s['dG_kJ_per_mol']:>10.2f}")
+    if "reweighted" in summary:
+        rw = summary["reweighted"]
+        target = ", ".join(f"{k} {v}" for k, v in rw["to"].items())
+        lines.append(f"reweighted to {target} (effective samples {rw['effective_samples']:.0f}):")
+        for s in rw["states"]:
+            lines.append(f"{s['name']:<24} {100 * s['population']:>9.1f}% "
+                         f"{100 * s['ci95'][0]:>7.1f}-{100 * s['ci95'][1]:<6.1f}%")
     return "\n".join(lines)

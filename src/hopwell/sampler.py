@@ -76,6 +76,9 @@ class SamplerSettings:
     learning_rate : float
     buffer_size : int
         Most recent walker states kept for training (bounds memory).
+    buffer_frames_per_segment : int
+        During training, frames per Langevin segment added to the buffer (the segment is run
+        in this many pieces, velocities carried over).
     cycles_per_chunk : int
         Cycles between chunk writes and checkpoints.
     flow_hidden, flow_layers, flow_bins : int
@@ -95,6 +98,7 @@ class SamplerSettings:
     fit_batch: int = 256
     learning_rate: float = 2.0e-3
     buffer_size: int = 20000
+    buffer_frames_per_segment: int = 5
     cycles_per_chunk: int = 10
     flow_hidden: int = 64
     flow_layers: int = 6
@@ -216,12 +220,20 @@ class Sampler:
     # -- moves ----------------------------------------------------------------------------
     def _langevin(self, walker: int) -> None:
         x0, e0 = self.positions_nm[walker], self.energies_kj[walker]
-        x, _, e = self.evaluator.langevin(x0, self.settings.langevin_steps)
+        pieces = 1 if self.production else self.settings.buffer_frames_per_segment
+        x, v, frames = x0, None, []
+        for steps in np.diff(np.linspace(0, self.settings.langevin_steps, pieces + 1).astype(int)):
+            x, v, e = self.evaluator.langevin(x, int(steps), v)
+            frames.append(x)
         if not (np.isfinite(e) and np.all(np.isfinite(x))) or e - e0 > EXPLOSION_KJ:
             self.store.log(f"cycle {self.cycle} walker {walker}: Langevin segment gave energy"
                            f" {e:.4g} kJ/mol (from {e0:.4g}); rolled back to the previous state")
             return
         self.positions_nm[walker], self.energies_kj[walker] = x, e
+        if not self.production and pieces > 1:  # intermediate frames: more data for the fit
+            with torch.no_grad():
+                ic = cartesian_to_internal(self.zmat, torch.as_tensor(np.stack(frames[:-1])))
+            self.buffer.extend(ic.torsions_rad[:, self.moving].numpy())
 
     def _propose(self, walker: int) -> dict:
         """One block of flow proposals for one walker; returns the proposal records."""
@@ -315,11 +327,17 @@ class Sampler:
             index = torch.as_tensor(self.rng.integers(0, len(data), self.settings.fit_batch))
             loss = self.flow.fit_step(self.optimizer, data[index])
         with torch.no_grad():
-            check = self.flow.log_prob(data[torch.as_tensor(self.rng.integers(0, len(data), 512))])
+            recent = data[-512:]  # the newest states, least seen by the fit
+            check = self.flow.log_prob(recent)
+            base = self.flow.base_log_prob(recent)
         if not (math.isfinite(loss) and torch.isfinite(check).all()):
             self.flow.load_state_dict(saved[0])
             self.optimizer.load_state_dict(saved[1])
             self.store.log(f"cycle {self.cycle}: flow refit diverged (loss {loss}); rolled back")
+        elif check.mean() < base.mean():
+            # Worse than its own base on the newest data (overfitting or a moved base):
+            # start the splines again from the identity, which is the base.
+            self.flow.reset_transforms()
 
     def run_cycle(self) -> None:
         """One cycle over all walkers; queues the records for the next chunk."""

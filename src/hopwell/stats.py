@@ -437,3 +437,60 @@ def split_rhat(chains):
     bulk = _rhat_core(_rank_normalize(x))
     tail = _rhat_core(_rank_normalize(np.abs(x - np.median(x))))
     return float(np.fmax(bulk, tail))
+
+
+def blockwise_importance_populations(states, log_weights, blocks, n_states, rng, n_boot=1000,
+                                     confidence=0.95):
+    """Populations from blocks of importance-weighted proposals, normalised within each block.
+
+    Each block shares the coordinates a proposal keeps (a walker state); within a block the
+    self-normalised weights estimate the conditional populations given those coordinates,
+    and the blocks, whose kept coordinates follow the chain, are averaged with equal weight.
+    A per-block constant in the log-weights therefore cancels. Intervals come from resampling
+    whole blocks (the iid bootstrap over blocks).
+
+    Parameters
+    ----------
+    states : array_like of int, shape (n_samples,)
+    log_weights : array_like, shape (n_samples,)
+        ``-inf`` for proposals with zero target density (guard rejections).
+    blocks : array_like of int, shape (n_samples,)
+        Block label of each proposal.
+    n_states : int
+    rng : numpy.random.Generator
+    n_boot : int
+    confidence : float
+
+    Returns
+    -------
+    PopulationResult
+        ``ess`` is the sum over blocks of Kish's effective sample size; ``n_samples`` counts
+        blocks with any finite weight; ``statistical_inefficiency`` is n_proposals / ess.
+    """
+    s = np.asarray(states)
+    lw = np.asarray(log_weights, dtype=float)
+    b = np.asarray(blocks)
+    if not (s.shape == lw.shape == b.shape) or s.ndim != 1:
+        raise ValueError("states, log_weights and blocks must be 1-D arrays of equal length")
+    (s,) = _walkers([s], n_states)
+    _check_boot(rng, n_boot, confidence)
+    _, block_index = np.unique(b, return_inverse=True)
+    finite = np.isfinite(lw)
+    block_max = np.full(block_index.max() + 1, -np.inf)
+    np.maximum.at(block_max, block_index[finite], lw[finite])
+    usable = np.isfinite(block_max)
+    w = np.where(finite, np.exp(lw - block_max[block_index]), 0.0)
+    per_block = np.zeros((len(block_max), n_states))
+    np.add.at(per_block, (block_index, s), w)
+    total = per_block.sum(1)
+    sq = np.zeros(len(block_max))
+    np.add.at(sq, block_index, w ** 2)
+    per_block = per_block[usable] / total[usable, None]
+    if len(per_block) == 0:
+        raise ValueError("no block has a proposal with finite weight")
+    ess = float(np.sum(total[usable] ** 2 / sq[usable]))
+    picks = rng.integers(0, len(per_block), size=(n_boot, len(per_block)))
+    replicates = per_block[picks].mean(1)
+    lower, upper = _interval(replicates, confidence)
+    return PopulationResult(per_block.mean(0), lower, upper, replicates, confidence,
+                            int(len(per_block)), float(len(s) / ess), 1, ess)
