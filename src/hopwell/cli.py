@@ -281,20 +281,23 @@ def resume(run_dir, hours, samples):
               help="Also give populations reweighted to this solvent model.")
 @click.option("--reweight-forcefield", type=click.Choice(["mmff94", "mmff94s", "amber14"]),
               default=None, help="Also give populations reweighted to this force field.")
+@click.option("--states", "states_file", type=click.Path(dir_okay=False), default=None,
+              help="States TOML file [default: automatic torsion wells or backbone regions].")
 @_fail_cleanly
-def report(run_dir, as_json, reweight_temperature, reweight_solvent, reweight_forcefield):
+def report(run_dir, as_json, reweight_temperature, reweight_solvent, reweight_forcefield, states_file):
     """Analyse RUN_DIR: populations, intervals, verdict; writes report.html and friends.
 
     \b
     Example:
       hopwell report dipeptide --json
       hopwell report amide --reweight-solvent obc2
+      hopwell report amide --states systems/demo_amide_states.toml
     """
     from hopwell.report import analyse, format_table, write_report
 
     reweight = {k: v for k, v in (("temperature_K", reweight_temperature), ("solvent", reweight_solvent),
                                   ("forcefield", reweight_forcefield)) if v is not None}
-    summary = analyse(Path(run_dir), reweight=reweight or None)
+    summary = analyse(Path(run_dir), reweight=reweight or None, states_file=states_file)
     page = write_report(Path(run_dir), summary)
     if as_json:
         click.echo(json.dumps(summary, indent=2))
@@ -354,6 +357,8 @@ def status(run_dir, as_json):
 def demo(run_dir, minutes):
     """Run the whole job on the shipped demo molecule (systems/demo_amide.sdf).
 
+    The report uses the states of systems/demo_amide_states.toml (the two amide rotamers).
+
     \b
     Example:
       hopwell demo -o demo-run
@@ -372,7 +377,7 @@ def demo(run_dir, minutes):
     click.echo(f"hopwell demo: {spec}, {minutes:g} minutes of sampling", err=True)
     start_run(spec, Path(run_dir), BuildOptions(), settings, Budget(seconds=minutes * 60.0),
               progress=_progress_printer())
-    summary = analyse(Path(run_dir))
+    summary = analyse(Path(run_dir), states_file=_systems_dir() / "demo_amide_states.toml")
     page = write_report(Path(run_dir), summary)
     click.echo("")
     click.echo(format_table(summary))

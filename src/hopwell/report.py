@@ -82,7 +82,9 @@ def _series(values: np.ndarray, production: Production) -> np.ndarray:
     return np.stack([r[:n] for r in rows])
 
 
-def _state_model(store: RunStore, mol: Chem.Mol, topology: md.Topology):
+def _state_model(store: RunStore, mol: Chem.Mol, topology: md.Topology, states_file=None):
+    if states_file is not None:
+        return st.read_user_states(states_file, mol), None
     if store.config().get("kind") == "peptide":
         model = st.backbone_model(topology)
         if model is not None:
@@ -90,7 +92,8 @@ def _state_model(store: RunStore, mol: Chem.Mol, topology: md.Topology):
     return None, st.state_torsions(mol)
 
 
-def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict | None = None) -> dict:
+def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict | None = None,
+            states_file: Path | None = None) -> dict:
     """Populations, free energies, diagnostics and the verdict of a run (the summary dict).
 
     Parameters
@@ -102,12 +105,14 @@ def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict
     reweight : dict, optional
         ``temperature_K`` and/or build overrides (``solvent``, ``forcefield``) to reweight the
         production samples to (see :mod:`hopwell.reweight`).
+    states_file : Path, optional
+        A user's states TOML (see :class:`hopwell.states.UserStates`); default automatic states.
     """
     store = RunStore.open(Path(run_dir))
     config = store.config()
     mol = next(iter(Chem.SDMolSupplier(str(store.path / "molecule.sdf"), removeHs=False)))
     topology = md.load_topology(str(store.path / "topology.pdb"))
-    model, torsions = _state_model(store, mol, topology)
+    model, torsions = _state_model(store, mol, topology, states_file)
     temperature = float(config["sampler"]["temperature_K"])
     kT = kT_kj(temperature)
     production = _gather(store, topology, model.torsions if model else torsions, kT)

@@ -194,3 +194,90 @@ def dihedrals(xyz_nm: np.ndarray, topology: md.Topology, model_torsions) -> np.n
         return np.zeros((len(xyz_nm), 0))
     traj = md.Trajectory(np.asarray(xyz_nm, dtype=np.float32), topology)
     return md.compute_dihedrals(traj, np.array([a for a, _ in model_torsions]))
+
+
+def _range_mask(values_deg: np.ndarray, low: float, high: float) -> np.ndarray:
+    """Whether angles lie in [low, high] on the circle (degrees; low > high wraps through 180)."""
+    v = (np.asarray(values_deg) + 180.0) % 360.0 - 180.0
+    low, high = (low + 180.0) % 360.0 - 180.0, (high + 180.0) % 360.0 - 180.0
+    return (v >= low) & (v <= high) if low <= high else (v >= low) | (v <= high)
+
+
+@dataclass(frozen=True)
+class UserStates:
+    """Named states from a user's TOML file, tested in order; samples matching none are "other".
+
+    File format::
+
+        [[state]]
+        name = "open"
+        combine = "all"            # "all" (and) or "any" (or) of the conditions below
+        [[state.torsion]]
+        atoms = [3, 4, 5, 6]       # 1-based atom numbers as in the input file
+        range = [120, -120]        # degrees; a range may wrap through 180
+        [[state.torsion]]
+        smarts = "O=C-N-[CH2]"     # or: the first SMARTS match gives the four atoms
+        range = [-30, 30]
+    """
+
+    names: tuple
+    torsions: tuple  # unique ((atoms), 1) pairs, as the other models
+    conditions: tuple  # per state: (combine, ((torsion index, low, high), ...))
+    kind: str = "user"
+
+    def assign(self, dihedrals_rad: np.ndarray) -> np.ndarray:
+        degrees = np.degrees(dihedrals_rad)
+        out = np.full(len(degrees), len(self.names) - 1)
+        for s in reversed(range(len(self.conditions))):
+            combine, tests = self.conditions[s]
+            masks = [_range_mask(degrees[:, t], lo, hi) for t, lo, hi in tests]
+            hit = np.all(masks, axis=0) if combine == "all" else np.any(masks, axis=0)
+            out[hit] = s
+        return out
+
+
+def read_user_states(path, mol: Chem.Mol) -> UserStates:
+    """Parse a states TOML file (see :class:`UserStates`); InputError on any problem."""
+    import tomllib
+
+    from hopwell.errors import InputError
+
+    try:
+        with open(path, "rb") as handle:
+            data = tomllib.load(handle)
+    except (OSError, tomllib.TOMLDecodeError) as exc:
+        raise InputError(f"{path}: cannot read states file: {exc}") from None
+    entries = data.get("state")
+    if not isinstance(entries, list) or not entries:
+        raise InputError(f"{path}: no [[state]] tables")
+    torsions, conditions, names = [], [], []
+    for number, entry in enumerate(entries, start=1):
+        name = entry.get("name")
+        combine = entry.get("combine", "all")
+        tests = entry.get("torsion", [])
+        if not isinstance(name, str) or not name or combine not in ("all", "any") or not tests:
+            raise InputError(f"{path}: state {number} needs a name, combine = all|any and torsions")
+        parsed = []
+        for test in tests:
+            if "atoms" in test:
+                atoms = tuple(int(a) - 1 for a in test["atoms"])
+                if len(atoms) != 4 or not all(0 <= a < mol.GetNumAtoms() for a in atoms):
+                    raise InputError(f"{path}: state {name!r}: atoms must be 4 numbers from 1 to {mol.GetNumAtoms()}")
+            elif "smarts" in test:
+                pattern = Chem.MolFromSmarts(str(test["smarts"]))
+                match = mol.GetSubstructMatch(pattern) if pattern is not None else ()
+                if len(match) != 4:
+                    raise InputError(f"{path}: state {name!r}: SMARTS {test['smarts']!r} does not match 4 atoms")
+                atoms = tuple(match)
+            else:
+                raise InputError(f"{path}: state {name!r}: each torsion needs atoms or smarts")
+            bounds = test.get("range")
+            if not isinstance(bounds, list) or len(bounds) != 2:
+                raise InputError(f"{path}: state {name!r}: each torsion needs range = [low, high] in degrees")
+            low, high = float(bounds[0]), float(bounds[1])
+            if (atoms, 1) not in torsions:
+                torsions.append((atoms, 1))
+            parsed.append((torsions.index((atoms, 1)), low, high))
+        names.append(name)
+        conditions.append((combine, tuple(parsed)))
+    return UserStates(tuple(names) + ("other",), tuple(torsions), tuple(conditions))
