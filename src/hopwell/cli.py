@@ -32,7 +32,10 @@ def _fail_cleanly(fn):
         except InputError as exc:
             click.echo(f"hopwell: error: {exc}", err=True)
             sys.exit(EXIT_INPUT)
-        except (click.exceptions.Exit, click.ClickException, SystemExit, KeyboardInterrupt):
+        except KeyboardInterrupt:  # before the sampler's own handler is installed
+            click.echo("hopwell: interrupted", err=True)
+            sys.exit(130)
+        except (click.exceptions.Exit, click.ClickException, SystemExit):
             raise
         except Exception:  # the one place that catches everything: report, keep the traceback
             with tempfile.NamedTemporaryFile(
@@ -212,7 +215,33 @@ def _progress_printer():
     return show
 
 
+def _load_config(ctx, param, value):
+    """Take option defaults from a TOML file whose keys are the long option names."""
+    if value is None:
+        return None
+    import tomllib
+
+    try:
+        with open(value, "rb") as handle:
+            data = tomllib.load(handle)
+    except (OSError, tomllib.TOMLDecodeError) as exc:
+        raise click.BadParameter(f"cannot read {value}: {exc}", param=param) from None
+    names = {opt[2:].replace("-", "_"): p.name for p in ctx.command.params
+             for opt in p.opts if opt.startswith("--") and p.name != "config"}
+    defaults = {}
+    for key, item in data.items():
+        name = names.get(key.replace("-", "_"))
+        if name is None:
+            raise click.BadParameter(f"{value}: unknown option {key!r}", param=param)
+        defaults[name] = item
+    ctx.default_map = {**(ctx.default_map or {}), **defaults}
+    return value
+
+
 @main.command()
+@click.option("--config", type=click.Path(dir_okay=False), default=None, is_eager=True,
+              expose_value=False, callback=_load_config,
+              help="TOML file of option values (keys as the long option names); the command line wins.")
 @_builder_options
 @click.option("-o", "--output", "run_dir", required=True, type=click.Path(file_okay=False),
               help="Run directory to create.")
@@ -225,6 +254,7 @@ def run(run_dir, hours, samples, temperature_K, walkers, training_cycles, langev
     \b
     Example:
       hopwell run systems/ace_ala_nme.pdb -o dipeptide --hours 8 --solvent obc2
+      hopwell run ligand.sdf --config examples/run_options.toml
     """
     import torch
 
@@ -293,14 +323,14 @@ def report(run_dir, as_json, reweight_temperature, reweight_solvent, reweight_fo
       hopwell report amide --reweight-solvent obc2
       hopwell report amide --states systems/demo_amide_states.toml
     """
-    from hopwell.report import analyse, format_table, write_report
+    from hopwell.report import analyse, format_table, public, write_report
 
     reweight = {k: v for k, v in (("temperature_K", reweight_temperature), ("solvent", reweight_solvent),
                                   ("forcefield", reweight_forcefield)) if v is not None}
     summary = analyse(Path(run_dir), reweight=reweight or None, states_file=states_file)
     page = write_report(Path(run_dir), summary)
     if as_json:
-        click.echo(json.dumps(summary, indent=2))
+        click.echo(json.dumps(public(summary), indent=2))
         return
     click.echo(format_table(summary))
     click.echo(f"report: {page}")

@@ -70,7 +70,7 @@ def _base_parameters(torsions_rad: np.ndarray) -> tuple[torch.Tensor, ...]:
     """Mixture parameters (loc, kappa, logits), each ``(n_moving, N_COMPONENTS + 1)``."""
     n = torsions_rad.shape[1]
     loc, kappa, weight = _fit_von_mises_mixture(
-        torsions_rad, N_COMPONENTS, FLOOR_WEIGHT, np.full(n, MAX_KAPPA)
+        torsions_rad, N_COMPONENTS, np.full(n, FLOOR_WEIGHT), np.full(n, MAX_KAPPA)
     )
     loc = np.concatenate([loc, np.zeros((n, 1))], 1)
     kappa = np.concatenate([kappa, np.full((n, 1), FLOOR_KAPPA)], 1)

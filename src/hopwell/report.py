@@ -23,6 +23,7 @@ from hopwell import stats
 from hopwell.atomic import atomic_write_bytes
 from hopwell.energy import kT_kj
 from hopwell.errors import InputError
+from hopwell.observables import KARPLUS_HN_HA, j3_hn_ha, series_mean
 from hopwell.reweight import hamiltonian_log_weights, reweighted_populations, temperature_log_weights
 from hopwell.store import RunStore
 
@@ -184,6 +185,17 @@ def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict
                                        if len(production.proposal_block) else None),
         "importance_sampling": importance,
     }
+    if model.kind == "backbone":  # phi is the model's first dihedral
+        phi = _series(production.dihedrals_rad[:, 0], production)
+        summary["observables"] = {
+            f"3J_HN_HA_Hz ({name})": dict(zip(("mean", "ci95_low", "ci95_high"), series_mean(j3_hn_ha(phi, name))))
+            for name in KARPLUS_HN_HA
+        }
+    summary["_labels"] = labels
+    summary["_series"] = series
+    summary["_dihedrals"] = production.dihedrals_rad
+    summary["_torsion_names"] = (["phi", "psi"] if model.kind == "backbone" else
+                                 ["-".join(str(a + 1) for a in atoms) for atoms, _ in model.torsions])
     if reweight:
         summary["reweighted"] = _reweighted(store, reweight, production, series, model, pops, rng, n_boot)
     return summary
@@ -230,9 +242,17 @@ def _importance(production: Production, model, n_states: int, rng, n_boot: int) 
     }
 
 
+def public(summary: dict) -> dict:
+    """The summary without its private bookkeeping (keys starting with an underscore)."""
+    return {k: v for k, v in summary.items() if not k.startswith("_")}
+
+
 def write_report(run_dir: Path, summary: dict) -> Path:
     """Write ``summary.json``, ``populations.csv`` and ``report.html`` into the run directory."""
     run_dir = Path(run_dir)
+    write_ensemble(run_dir, summary)
+    atomic_write_bytes(run_dir / "report.html", _html(summary).encode())
+    summary = public(summary)
     atomic_write_bytes(run_dir / "summary.json", json.dumps(summary, indent=2).encode())
     out = io.StringIO()
     writer = csv.writer(out)
@@ -243,8 +263,60 @@ def write_report(run_dir: Path, summary: dict) -> Path:
                          f"{s['ci95'][1]:.5f}", f"{s['dG_kJ_per_mol']:.3f}",
                          f"{s['dG_ci95'][0]:.3f}", f"{s['dG_ci95'][1]:.3f}"])
     atomic_write_bytes(run_dir / "populations.csv", out.getvalue().encode())
-    atomic_write_bytes(run_dir / "report.html", _html(summary).encode())
     return run_dir / "report.html"
+
+
+def write_ensemble(run_dir: Path, summary: dict) -> list[Path]:
+    """Write the production ensemble and one representative structure per state.
+
+    ``ensemble.dcd`` holds every production sample in the order of ``ensemble.csv`` (walker,
+    cycle, move, state, energy); ``state-<k>.sdf`` (small molecules) or ``state-<k>.pdb``
+    (peptides) is the lowest-energy sample of state k. Reads the store chunk by chunk.
+    """
+    store = RunStore.open(Path(run_dir))
+    labels = np.asarray(summary["_labels"])
+    names = [s["name"] for s in summary["states"]]
+    topology = md.load_topology(str(store.path / "topology.pdb"))
+    best = {}
+    rows = io.StringIO()
+    table = csv.writer(rows)
+    table.writerow(["frame", "walker", "cycle", "move", "state", "energy_kj_per_mol"])
+    tmp = store.path / ".ensemble.dcd.tmp"
+    frame = 0
+    with md.formats.DCDTrajectoryFile(str(tmp), "w", force_overwrite=True) as dcd:
+        for chunk in store.iter_chunks():
+            keep = chunk["state_production"].astype(bool)
+            if not keep.any():
+                continue
+            xyz = chunk["state_positions_nm"][keep]
+            energy = chunk["state_energy_kj"][keep]
+            dcd.write(xyz * 10.0)  # DCD stores Angstrom
+            for k in range(len(xyz)):
+                state = int(labels[frame])
+                table.writerow([frame, int(chunk["state_walker"][keep][k]), int(chunk["state_cycle"][keep][k]),
+                                int(chunk["state_move"][keep][k]), names[state], f"{energy[k]:.4f}"])
+                if state not in best or energy[k] < best[state][0]:
+                    best[state] = (float(energy[k]), xyz[k].astype(float))
+                frame += 1
+    tmp.replace(store.path / "ensemble.dcd")
+    atomic_write_bytes(store.path / "ensemble.csv", rows.getvalue().encode())
+    written = [store.path / "ensemble.dcd", store.path / "ensemble.csv"]
+    mol = next(iter(Chem.SDMolSupplier(str(store.path / "molecule.sdf"), removeHs=False)))
+    for state, (energy, xyz) in sorted(best.items()):
+        if store.config().get("kind") == "peptide":
+            path = store.path / f"state-{state}.pdb"
+            md.Trajectory(xyz[None], topology).save_pdb(str(path.with_suffix(".tmp.pdb")))
+            path.with_suffix(".tmp.pdb").replace(path)
+        else:
+            path = store.path / f"state-{state}.sdf"
+            m = Chem.Mol(mol)
+            conf = m.GetConformer()
+            for i, row in enumerate(xyz * 10.0):
+                conf.SetAtomPosition(i, row.tolist())
+            m.SetProp("_Name", f"{names[state]} (E = {energy:.2f} kJ/mol)")
+            atomic_write_bytes(path, (Chem.MolToMolBlock(m) + "$$$$\n").encode())
+        written.append(path)
+    return written
 
 
 def _population_plot(summary: dict) -> str:
@@ -263,11 +335,64 @@ def _population_plot(summary: dict) -> str:
     ax.set_xticks(range(len(shown)), [s["name"] for s in shown], rotation=30, ha="right")
     ax.set_ylabel("population (%)")
     ax.set_title("Populations with 95% intervals")
-    fig.tight_layout()
+    return _png(fig)
+
+
+def _png(fig) -> str:
+    import matplotlib.pyplot as plt
+
     buffer = io.BytesIO()
+    fig.tight_layout()
     fig.savefig(buffer, format="png")
     plt.close(fig)
     return base64.b64encode(buffer.getvalue()).decode()
+
+
+def _running_plot(summary: dict) -> str:
+    """Running population estimate of each populated state over production, base64 PNG."""
+    import matplotlib.pyplot as plt
+
+    series = summary["_series"]
+    fig, ax = plt.subplots(figsize=(6, 3.2), dpi=100)
+    pooled = series.T.ravel()  # walkers interleaved in time order
+    n = np.arange(1, len(pooled) + 1)
+    for s, state in enumerate(summary["states"]):
+        if state["population"] >= st.POPULATION_FLOOR:
+            ax.plot(n, 100 * np.cumsum(pooled == s) / n, label=state["name"])
+    ax.set_xlabel("production samples (all walkers)")
+    ax.set_ylabel("running population (%)")
+    ax.legend(fontsize=7, loc="best")
+    return _png(fig)
+
+
+def _torsion_plot(summary: dict) -> str:
+    """Free-energy profile of each state torsion (or the phi/psi map), base64 PNG."""
+    import matplotlib.pyplot as plt
+
+    d = np.degrees(summary["_dihedrals"])
+    kT = kT_kj(summary["temperature_K"])
+    names = summary["_torsion_names"]
+    if summary["state_model"] == "backbone":
+        fig, ax = plt.subplots(figsize=(4.2, 3.6), dpi=100)
+        hist, xe, ye = np.histogram2d(d[:, 0], d[:, 1], bins=36, range=[[-180, 180], [-180, 180]])
+        with np.errstate(divide="ignore"):
+            g = -kT * np.log(hist / hist.max())
+        mesh = ax.pcolormesh(xe, ye, g.T, cmap="viridis", vmax=20)
+        fig.colorbar(mesh, ax=ax, label="G (kJ/mol)")
+        ax.set_xlabel("phi (deg)")
+        ax.set_ylabel("psi (deg)")
+        return _png(fig)
+    n = max(1, d.shape[1])
+    fig, axes = plt.subplots(1, n, figsize=(2.6 * n + 1, 2.8), dpi=100, squeeze=False)
+    for t in range(d.shape[1]):
+        hist, edges = np.histogram(d[:, t], bins=72, range=(-180, 180))
+        with np.errstate(divide="ignore"):
+            g = -kT * np.log(hist / hist.max())
+        axes[0, t].step(0.5 * (edges[1:] + edges[:-1]), g, where="mid")
+        axes[0, t].set_xlabel(f"torsion {names[t]} (deg)")
+        axes[0, t].set_ylim(0, 25)
+    axes[0, 0].set_ylabel("G (kJ/mol)")
+    return _png(fig)
 
 
 def _html(summary: dict) -> str:
@@ -291,11 +416,17 @@ td:first-child,th:first-child{{text-align:left}}.verdict{{color:{colour};font-si
 <p class="verdict" id="verdict">Verdict: {html.escape(verdict)}</p>
 <ul>{reasons}</ul>
 <p>{summary['temperature_K']:.1f} K; {summary['samples']} production samples from {summary['walkers']}
-walkers; effective samples {summary['effective_samples']:.0f}; {summary['transitions']} transitions;
+walker(s); effective samples {summary['effective_samples']:.0f}; {summary['transitions']} transitions;
 flow acceptance {"-" if acceptance is None else f"{100 * acceptance:.1f}%"}.</p>
 <table id="populations"><tr><th>state</th><th>population (%)</th><th>95% interval (%)</th>
 <th>dG (kJ/mol) vs {html.escape(summary['dG_reference'])}</th><th>dG 95% interval</th></tr>{rows}</table>
+{"".join(f"<p>{html.escape(k)}: {v['mean']:.2f} (95% {v['ci95_low']:.2f} - {v['ci95_high']:.2f})</p>"
+         for k, v in summary.get("observables", {}).items())}
 <p><img id="population-plot" alt="populations" src="data:image/png;base64,{_population_plot(summary)}"></p>
+<h2>Free energy along the state torsions</h2>
+<p><img id="torsion-plot" alt="torsion free energies" src="data:image/png;base64,{_torsion_plot(summary)}"></p>
+<h2>Running estimates</h2>
+<p><img id="running-plot" alt="running populations" src="data:image/png;base64,{_running_plot(summary)}"></p>
 <p>Populations are properties of the force field and solvent model; an unconverged run
 misleads; results inform research and do not replace experiment.</p>
 </body></html>
@@ -309,6 +440,8 @@ def format_table(summary: dict) -> str:
     for s in summary["states"]:
         lines.append(f"{s['name']:<24} {100 * s['population']:>9.1f}% "
                      f"{100 * s['ci95'][0]:>7.1f}-{100 * s['ci95'][1]:<6.1f}% {s['dG_kJ_per_mol']:>10.2f}")
+    for name, value in summary.get("observables", {}).items():
+        lines.append(f"{name}: {value['mean']:.2f} ({value['ci95_low']:.2f}-{value['ci95_high']:.2f})")
     if "reweighted" in summary:
         rw = summary["reweighted"]
         target = ", ".join(f"{k} {v}" for k, v in rw["to"].items())

@@ -160,7 +160,7 @@ class Sampler:
 
     def __init__(self, mol: Chem.Mol, system, seeds_nm: np.ndarray, settings: SamplerSettings,
                  store: RunStore, n_walkers: int | None = None, platform: str | None = None):
-        self.settings, self.store = settings, store
+        self.settings, self.store, self.system = settings, store, system
         self.rng = np.random.default_rng(settings.seed)
         self.torch_rng = torch.Generator().manual_seed(settings.seed)
         self.evaluator = EnergyEvaluator(
@@ -420,7 +420,13 @@ class Sampler:
         self.optimizer.load_state_dict(saved["optimizer"])
         self.rng.bit_generator.state = json.loads(str(state["rng"]))
         self.torch_rng.set_state(torch.from_numpy(np.array(state["torch_rng"])))
-        self.evaluator.rng = np.random.default_rng(int(self.rng.integers(2**62)))
+        # Fresh noise: the integrator's seed is fixed when its context is made, so a resumed run
+        # would otherwise replay the Langevin noise of the run's start.
+        self.evaluator = EnergyEvaluator(
+            self.system, self.settings.temperature_K,
+            platform=self.evaluator.platform.getName(), timestep_ps=self.settings.timestep_fs * 1e-3,
+            friction_per_ps=self.settings.friction_per_ps, seed=int(self.rng.integers(1, 2**31 - 1)),
+        )
         for name, values in json.loads(str(state["stats"])).items():
             recent = values.pop("recent")
             self.stats[name] = CycleStats(**values, recent=deque(map(tuple, recent), maxlen=20))

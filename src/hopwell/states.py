@@ -7,16 +7,17 @@ Backbone regions (phi, psi in degrees; conventions vary, these are hopwell's):
 =========  ======================  ======================
 state      phi                     psi
 =========  ======================  ======================
-alphaR     [-180, 0)               [-120, 50)
-C7eq       [-180, 0)               [50, 120)
+alphaR     [-180, 0)               [-120, 0)
+C7eq       [-180, 0)               [0, 120)
 C5/beta    [-180, -120)            [120, 180] or < -120
 PII        [-120, 0)               [120, 180] or < -120
 alphaL     [0, 180)                [0, 120)
 C7ax       [0, 180)                [120, 180] or < 0
 =========  ======================  ======================
 
-C7eq and C5 are the vacuum names of the beta-region minima, PII and alphaR the water names;
-one table serves both so that solvent models can be compared. phi > 0 holds alphaL and C7ax.
+C7eq and C5 are the vacuum names, PII and alphaR the water names; one table serves both so
+that solvent models can be compared. The C7eq/alphaR border at psi = 0 keeps the broad vacuum
+C7eq basin (psi 20-100) in one state. phi > 0 holds alphaL and C7ax.
 """
 
 from __future__ import annotations
@@ -42,7 +43,7 @@ def backbone_state(phi_deg: np.ndarray, psi_deg: np.ndarray) -> np.ndarray:
     extended = (psi >= 120) | (psi < -120)
     out = np.full(phi.shape, BACKBONE_STATES.index("alphaR"))
     left = phi < 0
-    out[left & (psi >= 50) & (psi < 120)] = BACKBONE_STATES.index("C7eq")
+    out[left & (psi >= 0) & (psi < 120)] = BACKBONE_STATES.index("C7eq")
     out[left & extended & (phi < -120)] = BACKBONE_STATES.index("C5/beta")
     out[left & extended & (phi >= -120)] = BACKBONE_STATES.index("PII")
     out[~left & (psi >= 0) & (psi < 120)] = BACKBONE_STATES.index("alphaL")

@@ -134,8 +134,9 @@ class RunStore:
             if index >= first:
                 self.chunk_path(index).unlink()
                 removed += 1
-        for tmp in (self.path / CHUNK_DIR).glob(".*.tmp"):
-            tmp.unlink(missing_ok=True)
+        for folder in (self.path / CHUNK_DIR, self.path):  # leftovers of interrupted writes
+            for tmp in folder.glob(".*.tmp"):
+                tmp.unlink(missing_ok=True)
         return removed
 
     # -- checkpoints ----------------------------------------------------------------------
