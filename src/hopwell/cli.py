@@ -181,6 +181,10 @@ def _sampler_options(fn):
                      help="Flow proposals per cycle and walker."),
         click.option("--platform", type=click.Choice(["Reference", "CPU"]), default=None,
                      help="OpenMM platform [default: chosen by size]."),
+        click.option("--method", type=click.Choice(["flow", "md"]), default="flow", show_default=True,
+                     help="flow: Langevin plus flow moves; md: plain Langevin MD (baseline)."),
+        click.option("--local-move", type=click.Choice(["langevin", "ghmc"]), default="langevin",
+                     show_default=True, help="Local move: unadjusted Langevin or exact GHMC."),
     ]
     for option in reversed(options):
         fn = option(fn)
@@ -248,7 +252,7 @@ def _load_config(ctx, param, value):
 @_sampler_options
 @_fail_cleanly
 def run(run_dir, hours, samples, temperature_K, walkers, training_cycles, langevin_steps,
-        proposals, platform, **kwargs):
+        proposals, platform, method, local_move, **kwargs):
     """Sample the conformers of INPUT into a new run directory.
 
     \b
@@ -263,11 +267,15 @@ def run(run_dir, hours, samples, temperature_K, walkers, training_cycles, langev
     from hopwell.systems.builder import BuildOptions
 
     budget = _budget(hours, samples)
+    if method == "md":  # no flow to train: every cycle is production
+        training_cycles, hours_share = 0, None
+    else:
+        hours_share = None if training_cycles is not None or hours is None else 0.3 * hours * 3600.0
+        training_cycles = training_cycles if training_cycles is not None else (10**9 if hours and not samples else 200)
     settings = SamplerSettings(
         temperature_K=temperature_K, langevin_steps=langevin_steps, proposals_per_cycle=proposals,
-        seed=kwargs["random_seed"],
-        training_cycles=training_cycles or (10**9 if hours and not samples else 200),
-        training_seconds=None if training_cycles or hours is None else 0.3 * hours * 3600.0,
+        seed=kwargs["random_seed"], method=method, local_move=local_move,
+        training_cycles=training_cycles, training_seconds=hours_share,
     )
     if temperature_K <= 0 or langevin_steps < 1 or proposals < 1:
         raise InputError("--temperature, --langevin-steps and --proposals must be positive")

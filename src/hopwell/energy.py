@@ -9,6 +9,8 @@ import numpy as np
 import openmm
 from openmm import unit
 
+from hopwell.integrators import make_integrator
+
 # Molar gas constant, kJ/mol/K (CODATA 2018, exact by the SI definition of k_B and N_A).
 GAS_CONSTANT_KJ = 0.00831446261815324
 # Below this many atoms the Reference platform is used. Measured here (2 cores, OpenMM 8.6.1,
@@ -48,6 +50,8 @@ class EnergyEvaluator:
         OpenMM platform name; chosen from the atom count when omitted.
     timestep_ps, friction_per_ps : float
         ``LangevinMiddleIntegrator`` settings.
+    local_move : {"langevin", "ghmc"}
+        Unadjusted ``LangevinMiddleIntegrator`` or exact GHMC (see :mod:`hopwell.integrators`).
     seed : int
         Seed of the integrator's random numbers and of the initial velocities drawn for each
         Langevin segment (0 picks one at random).
@@ -69,15 +73,14 @@ class EnergyEvaluator:
         timestep_ps: float = DEFAULT_TIMESTEP_PS,
         friction_per_ps: float = DEFAULT_FRICTION_PER_PS,
         seed: int = 0,
+        local_move: str = "langevin",
     ):
         if temperature_K <= 0:
             raise ValueError(f"temperature must be positive, got {temperature_K} K")
         self.n_atoms = system.getNumParticles()
         self.temperature_K = float(temperature_K)
         self.kT = kT_kj(temperature_K)
-        self.integrator = openmm.LangevinMiddleIntegrator(
-            temperature_K * unit.kelvin, friction_per_ps / unit.picosecond, timestep_ps * unit.picosecond
-        )
+        self.integrator = make_integrator(local_move, temperature_K, friction_per_ps, timestep_ps, self.kT)
         self.integrator.setRandomNumberSeed(seed)
         self.rng = np.random.default_rng(seed if seed else None)
         self.platform = choose_platform(self.n_atoms, platform)
@@ -130,6 +133,13 @@ class EnergyEvaluator:
             openmm.LocalEnergyMinimizer.minimize(self.context, tolerance_kj_nm, max_iterations)
             out[k] = self.context.getState(getPositions=True).getPositions(asNumpy=True).value_in_unit(unit.nanometer)
         return out
+
+    def local_acceptance(self) -> float | None:
+        """Fraction of accepted GHMC steps so far (None for Langevin)."""
+        if not isinstance(self.integrator, openmm.CustomIntegrator):
+            return None
+        trials = self.integrator.getGlobalVariableByName("ntrials")
+        return self.integrator.getGlobalVariableByName("naccept") / trials if trials else float("nan")
 
     def maxwell_boltzmann(self) -> np.ndarray:
         """Velocities (nm/ps) drawn from Maxwell-Boltzmann at the evaluator's temperature.

@@ -58,6 +58,11 @@ class SamplerSettings:
     Attributes
     ----------
     temperature_K : float
+    method : {"flow", "md"}
+        "flow": Langevin plus flow and one-torsion moves; "md": the Langevin segments alone
+        (the plain-MD baseline, from the same seeds, into the same kind of run directory).
+    local_move : {"langevin", "ghmc"}
+        Unadjusted Langevin or exact GHMC segments (:mod:`hopwell.integrators`).
     timestep_fs, friction_per_ps : float
         Langevin settings; no constraints, so 1 fs (DEVELOPERS.md states the measured bias).
     langevin_steps : int
@@ -86,6 +91,8 @@ class SamplerSettings:
     """
 
     temperature_K: float = 300.0
+    method: str = "flow"
+    local_move: str = "langevin"
     timestep_fs: float = 1.0
     friction_per_ps: float = 1.0
     langevin_steps: int = 250
@@ -166,7 +173,7 @@ class Sampler:
         self.evaluator = EnergyEvaluator(
             system, settings.temperature_K, platform=platform,
             timestep_ps=settings.timestep_fs * 1e-3, friction_per_ps=settings.friction_per_ps,
-            seed=int(self.rng.integers(1, 2**31 - 1)),
+            seed=int(self.rng.integers(1, 2**31 - 1)), local_move=settings.local_move,
         )
         n_atoms = mol.GetNumAtoms()
         self.zmat = build_zmatrix(
@@ -347,6 +354,8 @@ class Sampler:
         for walker in range(self.n_walkers):
             self._langevin(walker)
             self._record_state(states, walker, MOVE_LANGEVIN, production)
+            if self.settings.method == "md":
+                continue
             block = self._propose(walker)
             if self.settings.single_moves_per_cycle:
                 self._single_moves(walker)
@@ -426,6 +435,7 @@ class Sampler:
             self.system, self.settings.temperature_K,
             platform=self.evaluator.platform.getName(), timestep_ps=self.settings.timestep_fs * 1e-3,
             friction_per_ps=self.settings.friction_per_ps, seed=int(self.rng.integers(1, 2**31 - 1)),
+            local_move=self.settings.local_move,
         )
         for name, values in json.loads(str(state["stats"])).items():
             recent = values.pop("recent")
