@@ -181,6 +181,9 @@ def _sampler_options(fn):
                      help="Flow proposals per cycle and walker."),
         click.option("--platform", type=click.Choice(["Reference", "CPU"]), default=None,
                      help="OpenMM platform [default: chosen by size]."),
+        click.option("--until-width", type=float, default=None,
+                     help="Stop early once the verdict is converged and every 95%% interval is"
+                          " narrower than this many percentage points (checked every 200 cycles)."),
         click.option("--method", type=click.Choice(["flow", "md"]), default="flow", show_default=True,
                      help="flow: Langevin plus flow moves; md: plain Langevin MD (baseline)."),
         click.option("--local-move", type=click.Choice(["langevin", "ghmc"]), default="langevin",
@@ -199,6 +202,27 @@ def _budget(hours, samples):
     if (hours is not None and hours <= 0) or (samples is not None and samples < 1):
         raise InputError("--hours and --samples must be positive")
     return Budget(samples=samples, seconds=None if hours is None else hours * 3600.0)
+
+
+def _narrow_enough(width_points):
+    """A ``stop_when`` callback for ``--until-width`` (None when not asked for)."""
+    if width_points is None:
+        return None
+    if width_points <= 0:
+        raise InputError("--until-width must be positive (percentage points)")
+    from hopwell.report import analyse
+
+    def check(sampler):
+        if not sampler.production or sampler.next_chunk % 20:
+            return False
+        try:
+            summary = analyse(sampler.store.path, n_boot=200)
+        except InputError:  # no production samples yet
+            return False
+        widest = max(100 * (s["ci95"][1] - s["ci95"][0]) for s in summary["states"])
+        return summary["verdict"] == "converged" and widest < width_points
+
+    return check
 
 
 def _progress_printer():
@@ -252,7 +276,7 @@ def _load_config(ctx, param, value):
 @_sampler_options
 @_fail_cleanly
 def run(run_dir, hours, samples, temperature_K, walkers, training_cycles, langevin_steps,
-        proposals, platform, method, local_move, **kwargs):
+        proposals, platform, method, local_move, until_width, **kwargs):
     """Sample the conformers of INPUT into a new run directory.
 
     \b
@@ -282,7 +306,8 @@ def run(run_dir, hours, samples, temperature_K, walkers, training_cycles, langev
     options = BuildOptions(**{k: v for k, v in kwargs.items() if k != "input_spec"})
     torch.set_num_threads(1)  # OpenMM and torch alternate; one thread each avoids oversubscription
     sampler = start_run(kwargs["input_spec"], Path(run_dir), options, settings, budget,
-                        n_walkers=walkers, platform=platform, progress=_progress_printer())
+                        n_walkers=walkers, platform=platform, progress=_progress_printer(),
+                        stop_when=_narrow_enough(until_width))
     click.echo(f"\nrun finished at cycle {sampler.cycle}: {sampler.production_samples} production"
                f" samples in {run_dir}", err=True)
 

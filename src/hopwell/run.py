@@ -42,7 +42,7 @@ def _topology_pdb(molsys: MolecularSystem) -> bytes:
 
 def start_run(spec: str, out_dir: Path, build_options: BuildOptions, settings: SamplerSettings,
               budget: Budget, n_walkers: int | None = None, platform: str | None = None,
-              progress=None) -> Sampler:
+              progress=None, stop_when=None) -> Sampler:
     """Build the system, create the run directory and sample until the budget is spent."""
     molsys = build(spec, build_options)
     if n_walkers is not None and n_walkers < 1:
@@ -64,7 +64,7 @@ def start_run(spec: str, out_dir: Path, build_options: BuildOptions, settings: S
     store.log(f"run started: {molsys.summary()['formula']}, {config['walkers']} walkers")
     sampler = Sampler(molsys.mol, molsys.system, molsys.seeds_nm, settings, store,
                       n_walkers=config["walkers"], platform=platform)
-    sampler.run(budget, progress)
+    sampler.run(budget, progress, stop_when)
     return sampler
 
 
@@ -96,12 +96,12 @@ def load_sampler(run_dir: Path) -> Sampler:
     return sampler
 
 
-def resume_run(run_dir: Path, budget: Budget | None = None, progress=None) -> Sampler:
+def resume_run(run_dir: Path, budget: Budget | None = None, progress=None, stop_when=None) -> Sampler:
     """Continue a run from its newest checkpoint, with its own budget unless one is given."""
     sampler = load_sampler(run_dir)
     if budget is None:
         saved = sampler.store.config()["budget"]
         budget = Budget(samples=saved.get("samples"), seconds=saved.get("seconds"))
     sampler.store.log(f"resumed at cycle {sampler.cycle}")
-    sampler.run(budget, progress)
+    sampler.run(budget, progress, stop_when)
     return sampler

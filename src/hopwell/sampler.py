@@ -453,7 +453,7 @@ class Sampler:
         """Finish the current cycle, write a final checkpoint and return (SIGINT/SIGTERM)."""
         self._stop = True
 
-    def run(self, budget: Budget, progress=None) -> None:
+    def run(self, budget: Budget, progress=None, stop_when=None) -> None:
         """Run cycles until the budget is spent or a stop is requested; checkpoint at the end.
 
         Parameters
@@ -461,6 +461,8 @@ class Sampler:
         budget : Budget
         progress : callable, optional
             Called as ``progress(sampler)`` after each cycle.
+        stop_when : callable, optional
+            Called as ``stop_when(sampler)`` after each checkpoint; True ends the run there.
         """
         previous = {sig: signal.signal(sig, self.request_stop) for sig in (signal.SIGINT, signal.SIGTERM)}
         try:
@@ -476,6 +478,9 @@ class Sampler:
                     progress(self)
                 if self.cycle % self.settings.cycles_per_chunk == 0:
                     self.flush()
+                    if stop_when is not None and stop_when(self):
+                        self.store.log(f"cycle {self.cycle}: stopping early, the stop condition holds")
+                        break
             self.flush()
         finally:
             for sig, handler in previous.items():
