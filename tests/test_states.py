@@ -83,7 +83,7 @@ def test_report_on_a_short_butane_run(tmp_path):
 
 def test_demo_runs_end_to_end_shortened(tmp_path):
     # The README's first command, shortened: builds the shipped SDF, trains, samples, reports.
-    result = CliRunner().invoke(main, ["demo", "-o", str(tmp_path / "demo"), "--minutes", "0.25"])
+    result = CliRunner().invoke(main, ["demo", "-o", str(tmp_path / "demo"), "--minutes", "0.5"])
     assert result.exit_code == 0, result.output
     assert "verdict:" in result.output and "report:" in result.output
     page = (tmp_path / "demo" / "report.html").read_text()
