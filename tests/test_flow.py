@@ -9,7 +9,8 @@ import torch
 from scipy import integrate, stats
 
 from hopwell.flow import ConformerFlow, InternalBase, pack, reduced_energy, unpack
-from hopwell.internal import InternalCoords, build_zmatrix, cartesian_to_internal, internal_to_cartesian
+from hopwell.internal import (InternalCoords, build_zmatrix, cartesian_to_internal,
+                              internal_to_cartesian)
 from hopwell.systems.builder import build
 
 torch.set_num_threads(1)
@@ -61,8 +62,9 @@ def butane():
     """Butane: Z-matrix with torsion offsets, seed conformers as features, a physics base."""
     molsys = build("CCCC")
     mol = molsys.mol
-    zmat = build_zmatrix(mol.GetNumAtoms(), [(b.GetBeginAtomIdx(), b.GetEndAtomIdx()) for b in mol.GetBonds()],
-                         [a.GetAtomicNum() > 1 for a in mol.GetAtoms()], molsys.rotatable_bonds())
+    bonds = [(b.GetBeginAtomIdx(), b.GetEndAtomIdx()) for b in mol.GetBonds()]
+    zmat = build_zmatrix(mol.GetNumAtoms(), bonds, [a.GetAtomicNum() > 1 for a in mol.GetAtoms()],
+                         molsys.rotatable_bonds())
     coords = cartesian_to_internal(zmat, molsys.seeds_nm)
     return zmat, pack(coords), InternalBase.fit(coords, zmat.is_principal)
 
@@ -72,7 +74,8 @@ def chain_flow():
     x, _ = _two_well_chain(500, seed=1)
     base = InternalBase.fit(_coords(x, 5), CHAIN.is_principal)
     torch.manual_seed(0)
-    return _perturb(ConformerFlow.for_zmatrix(CHAIN, base, hidden=16, layers=6, bins=6), 0.3, seed=2), x
+    flow = ConformerFlow.for_zmatrix(CHAIN, base, hidden=16, layers=6, bins=6)
+    return _perturb(flow, 0.3, seed=2), x
 
 
 # --- base ---------------------------------------------------------------------------------------
@@ -125,7 +128,8 @@ def test_base_samples_follow_its_density():
     a, b, mean, width = _truncnorm_args(base)
     # Source: scipy.stats.kstest against scipy's truncated-normal CDF.
     for j in range(5):
-        assert stats.kstest(x[:, j], stats.truncnorm(a[j], b[j], loc=mean[j], scale=width[j]).cdf).pvalue > 1e-3
+        exact = stats.truncnorm(a[j], b[j], loc=mean[j], scale=width[j])
+        assert stats.kstest(x[:, j], exact.cdf).pvalue > 1e-3
 
     def mixture_cdf(phi):
         # scipy.stats.vonmises.cdf is cumulative over the real line; measure from -pi.
@@ -160,7 +164,7 @@ def test_base_fit_recovers_a_two_well_torsion():
     gap = true_log_density.mean() - fitted.mean()
     assert 0.0 < gap < 0.1
     np.testing.assert_allclose(mean, x_train[:, :5].mean(0))
-    assert np.all(width[:3] >= 0.005 * 0.9)
+    np.testing.assert_allclose(width, [0.005] * 3 + [0.04] * 2, rtol=0.05)  # the draws' widths
 
 
 def test_plain_base_has_uniform_torsions_and_wider_gaussians():
@@ -189,7 +193,8 @@ def test_log_prob_is_base_plus_autograd_log_det(chain_flow):
         assert float(log_q[i]) == pytest.approx(float(expected), abs=1e-9)
         # The generative direction reports log |det du/dx| at its output.
         jac_inv = torch.autograd.functional.jacobian(lambda v: flow.from_base(v[None])[0][0], u[0])
-        x_back, ladj = flow.from_base(u)
+        with torch.no_grad():
+            x_back, ladj = flow.from_base(u)
         assert torch.allclose(x_back, x[i:i + 1], atol=1e-10)
         assert float(ladj) == pytest.approx(-float(torch.linalg.slogdet(jac_inv)[1]), abs=1e-9)
     assert float((log_q - flow.base.log_prob(x)).abs().max()) > 0.1  # the flow is not the identity
@@ -222,11 +227,24 @@ def test_circular_torsions_stay_in_range_and_density_is_continuous(chain_flow):
         assert float((log_q[:20] - log_q[40:]).abs().max()) > 0.1  # the test point matters
 
 
+def test_torsion_sets_alternate_within_each_branch_group(butane):
+    zmat, _, base = butane
+    half = np.array(ConformerFlow.for_zmatrix(zmat, base).config["torsion_half"])
+    group = np.where(zmat.is_principal, np.arange(len(half)), zmat.principal_of)
+    assert np.any(~zmat.is_principal)
+    for g in np.flatnonzero(zmat.is_principal):
+        members = half[group == g]
+        assert np.all(members[1:] != members[:-1])
+    principal = half[zmat.is_principal]
+    assert np.all(principal[1:] != principal[:-1])
+
+
 def test_untrained_flow_equals_its_base(butane):
     zmat, x_seeds, base = butane
     flow = ConformerFlow.for_zmatrix(zmat, base, hidden=32, layers=6)
     x = torch.cat([x_seeds, base.sample(200, torch.Generator().manual_seed(10))])
-    np.testing.assert_allclose(flow.log_prob(x).detach().numpy(), base.log_prob(x).numpy(), atol=1e-10)
+    np.testing.assert_allclose(flow.log_prob(x).detach().numpy(), base.log_prob(x).numpy(),
+                               atol=1e-10)
 
 
 def test_training_approaches_the_true_density():
@@ -284,10 +302,12 @@ def test_save_load_round_trip(chain_flow, tmp_path):
     assert not torch.equal(fresh.log_prob(x), flow.log_prob(x))
     assert torch.equal(fresh.load(tmp_path / "flow.pt").log_prob(x), flow.log_prob(x))
     with pytest.raises(ValueError, match="configuration"):
-        ConformerFlow.for_zmatrix(CHAIN, flow.base, hidden=8, layers=6, bins=6).load(tmp_path / "flow.pt")
+        other = ConformerFlow.for_zmatrix(CHAIN, flow.base, hidden=8, layers=6, bins=6)
+        other.load(tmp_path / "flow.pt")
     # torch.load(weights_only=True) refuses pickled objects other than tensors and containers.
-    torch.save({"config": fresh.config, "state": fresh.state_dict(), "extra": np.random.default_rng(0)},
-               tmp_path / "unsafe.pt")
+    unsafe = {"config": fresh.config, "state": fresh.state_dict(),
+              "extra": np.random.default_rng(0)}
+    torch.save(unsafe, tmp_path / "unsafe.pt")
     with pytest.raises(pickle.UnpicklingError):
         fresh.load(tmp_path / "unsafe.pt")
 
@@ -321,7 +341,8 @@ def test_reduced_energy_gradient_matches_finite_differences(butane):
     x = x_seeds[:2].clone().requires_grad_(True)
 
     def total(v):
-        return reduced_energy(internal_to_cartesian(zmat, *unpack(v, zmat.n_atoms))[0], energy_fn).sum()
+        positions_nm = internal_to_cartesian(zmat, *unpack(v, zmat.n_atoms))[0]
+        return reduced_energy(positions_nm, energy_fn).sum()
 
     grad, = torch.autograd.grad(total(x), x)
     # Source: central finite differences of the energy through the Cartesian map.
@@ -355,7 +376,7 @@ def test_reverse_kl_gradient_matches_autograd(butane):
     expected = (log_q - log_jacobian + energy_torch(positions_nm)).mean()
     expected.backward()
     torch.nn.utils.clip_grad_norm_(flow.parameters(), 10.0)
-    assert loss == pytest.approx(float(expected), rel=1e-10)
+    assert loss == pytest.approx(float(expected.detach()), rel=1e-10)
     for g, p in zip(grads, flow.parameters()):
         torch.testing.assert_close(g, p.grad, rtol=1e-8, atol=1e-10)
 

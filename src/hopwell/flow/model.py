@@ -56,7 +56,8 @@ class _Coupling(torch.nn.Module):
     def __init__(self, transformed: torch.Tensor, periodic: torch.Tensor, center: torch.Tensor,
                  scale: torch.Tensor, hidden: int, bins: int):
         super().__init__()
-        for name, mask in [("circ_idx", transformed & periodic), ("lin_idx", transformed & ~periodic),
+        for name, mask in [("circ_idx", transformed & periodic),
+                           ("lin_idx", transformed & ~periodic),
                            ("cond_circ_idx", ~transformed & periodic),
                            ("cond_lin_idx", ~transformed & ~periodic)]:
             self.register_buffer(name, torch.nonzero(mask).flatten(), persistent=False)
@@ -116,7 +117,8 @@ class _ReducedEnergy(torch.autograd.Function):
         f = torch.as_tensor(np.asarray(forces, dtype=np.float64))
         if u.shape != positions_nm.shape[:1] or f.shape != positions_nm.shape:
             raise ValueError(f"energy_fn must return shapes {tuple(positions_nm.shape[:1])} and "
-                             f"{tuple(positions_nm.shape)}, got {tuple(u.shape)} and {tuple(f.shape)}")
+                             f"{tuple(positions_nm.shape)}, got {tuple(u.shape)} and "
+                             f"{tuple(f.shape)}")
         ctx.save_for_backward(f)
         return u
 
@@ -167,13 +169,14 @@ class ConformerFlow(torch.nn.Module):
         Needed by :meth:`reverse_kl_step` (see :meth:`for_zmatrix`).
     """
 
-    def __init__(self, base: InternalBase, torsion_half: np.ndarray, hidden: int = 128,
+    def __init__(self, base: InternalBase, torsion_half: np.ndarray, hidden: int = 64,
                  layers: int = 6, bins: int = 8, zmat: ZMatrix | None = None):
         super().__init__()
         n_bonds, n_angles, n_torsions = base.sizes
         half = torch.as_tensor(np.asarray(torsion_half, dtype=bool))
         if half.shape != (n_torsions,):
-            raise ValueError(f"torsion_half must have shape ({n_torsions},), got {tuple(half.shape)}")
+            raise ValueError(f"torsion_half must have shape ({n_torsions},), "
+                             f"got {tuple(half.shape)}")
         if hidden < 1 or layers < 1 or bins < 2:
             raise ValueError("need hidden >= 1, layers >= 1 and bins >= 2")
         self.base, self.zmat = base, zmat
@@ -184,7 +187,8 @@ class ConformerFlow(torch.nn.Module):
         # Spline scale: the base width, shrunk so that [-SPLINE_BOUND, SPLINE_BOUND] standardized
         # units stay inside each bond's and angle's valid range.
         edge = torch.minimum(base.mean - base.lower, base.upper - base.mean) / SPLINE_BOUND
-        scale = torch.cat([torch.minimum(base.width, edge), torch.ones(n_torsions, dtype=torch.float64)])
+        scale = torch.cat([torch.minimum(base.width, edge),
+                           torch.ones(n_torsions, dtype=torch.float64)])
         center = torch.cat([base.mean, torch.zeros(n_torsions, dtype=torch.float64)])
         no_torsion = torch.zeros(n_bonds + n_angles, dtype=torch.bool)
         sets = [torch.cat([no_torsion, half]), torch.cat([no_torsion, ~half]), ~periodic]
@@ -193,24 +197,26 @@ class ConformerFlow(torch.nn.Module):
             for l in range(layers) if sets[l % 3].any())
 
     @classmethod
-    def for_zmatrix(cls, zmat: ZMatrix, base: InternalBase, hidden: int = 128, layers: int = 6,
+    def for_zmatrix(cls, zmat: ZMatrix, base: InternalBase, hidden: int = 64, layers: int = 6,
                     bins: int = 8) -> "ConformerFlow":
-        """A flow for a Z-matrix: principal torsions alternate between the two torsion sets in
-        row order; each offset goes to the set opposite its principal torsion, so the two
-        condition each other."""
+        """A flow for a Z-matrix. Principal torsions alternate between the two torsion sets in
+        row order, and so do the members of each group (a principal torsion, then its offsets in
+        row order), so that a principal torsion and its first offset, and consecutive offsets of
+        one branch point, condition each other."""
         n = zmat.n_atoms
         if tuple(base.sizes) != (n - 1, n - 2, n - 3):
             raise ValueError(f"base sizes {base.sizes} do not fit a Z-matrix of {n} atoms")
-        rank = np.cumsum(zmat.is_principal) - 1
-        principal_half = rank % 2 == 0
-        half = np.where(zmat.is_principal, principal_half,
-                        ~principal_half[np.maximum(zmat.principal_of, 0)])
+        group = np.where(zmat.is_principal, np.arange(n - 3), zmat.principal_of)
+        member = np.array([np.sum(group[:k] == group[k]) for k in range(n - 3)])
+        rank = (np.cumsum(zmat.is_principal) - 1)[group]  # the group's rank among groups
+        half = (rank + member) % 2 == 0
         return cls(base, half, hidden=hidden, layers=layers, bins=bins, zmat=zmat)
 
     def _check(self, x: torch.Tensor) -> torch.Tensor:
         x = torch.as_tensor(x, dtype=torch.float64)
         if x.ndim != 2 or x.shape[1] != sum(self.base.sizes):
-            raise ValueError(f"x must have shape (batch, {sum(self.base.sizes)}), got {tuple(x.shape)}")
+            raise ValueError(f"x must have shape (batch, {sum(self.base.sizes)}), "
+                             f"got {tuple(x.shape)}")
         n_circ = self.base.sizes[2]
         return torch.cat([x[:, :-n_circ], wrap(x[:, -n_circ:])], -1)
 
@@ -235,12 +241,14 @@ class ConformerFlow(torch.nn.Module):
         u, ladj = self.to_base(x)
         return self.base.log_prob(u) + ladj
 
-    def _rsample(self, n: int, generator: torch.Generator | None) -> tuple[torch.Tensor, torch.Tensor]:
+    def _rsample(self, n: int,
+                 generator: torch.Generator | None) -> tuple[torch.Tensor, torch.Tensor]:
         u = self.base.sample(n, generator)
         x, ladj = self.from_base(u)
         return x, self.base.log_prob(u) + ladj
 
-    def sample(self, n: int, generator: torch.Generator | None = None) -> tuple[torch.Tensor, torch.Tensor]:
+    def sample(self, n: int,
+               generator: torch.Generator | None = None) -> tuple[torch.Tensor, torch.Tensor]:
         """Draw n conformers: features x, shape (n, D), and their log-density log_q, shape (n,)."""
         with torch.no_grad():
             return self._rsample(n, generator)
@@ -248,7 +256,7 @@ class ConformerFlow(torch.nn.Module):
     def fit_step(self, optimizer: torch.optim.Optimizer, x_batch: torch.Tensor,
                  weights: torch.Tensor | None = None) -> float:
         """One maximum-likelihood (forward-KL) step on a batch; returns the (weighted) mean
-        negative log-likelihood before the step.
+        negative log-likelihood before the step. Gradient norms are clipped at MAX_GRAD_NORM.
 
         Parameters
         ----------
@@ -261,7 +269,8 @@ class ConformerFlow(torch.nn.Module):
         x = self._check(x_batch)
         w = torch.ones(len(x), dtype=torch.float64) if weights is None else torch.as_tensor(
             weights, dtype=torch.float64)
-        if w.shape != (len(x),) or not torch.all(torch.isfinite(w)) or torch.any(w < 0) or w.sum() <= 0:
+        valid = w.shape == (len(x),) and bool(torch.all(torch.isfinite(w)) & torch.all(w >= 0))
+        if not valid or w.sum() <= 0:
             raise ValueError("weights must be finite, non-negative, not all zero, shape (batch,)")
         loss = -(w * self.log_prob(x)).sum() / w.sum()
         return self._step(optimizer, loss)
@@ -273,6 +282,16 @@ class ConformerFlow(torch.nn.Module):
         The target density in internal coordinates is ``exp(-u) J`` (see
         :func:`hopwell.internal.internal_to_cartesian`); gradients reach the flow through the
         Cartesian map and the callback's forces (:func:`reduced_energy`). Returns the loss.
+
+        Parameters
+        ----------
+        optimizer : torch.optim.Optimizer
+        n : int
+            Samples per step.
+        energy_fn : callable
+            Positions (n, n_atoms, 3) in nm -> reduced energies (n,) and reduced forces
+            (n, n_atoms, 3) in 1/nm, numpy arrays.
+        generator : torch.Generator, optional
         """
         if self.zmat is None:
             raise ValueError("reverse_kl_step needs a flow built with a Z-matrix (for_zmatrix)")
@@ -289,11 +308,12 @@ class ConformerFlow(torch.nn.Module):
         return float(loss.detach())
 
     def save(self, path) -> None:
-        """Write the configuration and ``state_dict`` with ``torch.save``."""
+        """Write the configuration and ``state_dict`` to ``path`` with ``torch.save``."""
         torch.save({"config": self.config, "state": self.state_dict()}, path)
 
     def load(self, path) -> "ConformerFlow":
-        """Read a :meth:`save` file (``torch.load(weights_only=True)``) into this flow."""
+        """Read a :meth:`save` file (``torch.load(weights_only=True)``) into this flow, which
+        must have the same configuration (ValueError otherwise); returns ``self``."""
         saved = torch.load(path, weights_only=True)
         if saved.get("config") != self.config:
             raise ValueError(f"{path}: saved flow configuration {saved.get('config')} differs "
