@@ -225,20 +225,42 @@ def _narrow_enough(width_points):
     return check
 
 
-def _progress_printer():
-    """Progress: a refreshed line on a terminal, a plain line every 50 cycles otherwise."""
+def _progress_printer(budget):
+    """Progress: click's progress bar on a terminal, a plain line every 50 cycles otherwise.
+
+    The bar runs over the budget (seconds or production samples, whichever ends first) and
+    shows the phase, acceptance by move type and the remaining time.
+    """
     tty = sys.stderr.isatty()
+    bar = None
+
+    def fraction(sampler):
+        parts = []
+        if budget.seconds:
+            parts.append(sampler.elapsed_s / budget.seconds)
+        if budget.samples:
+            parts.append(sampler.production_samples / budget.samples)
+        return min(1.0, max(parts)) if parts else 0.0
+
+    def describe(sampler):
+        phase = "production" if sampler.production else "training"
+        return (f"{phase} cycle {sampler.cycle}: one-torsion {sampler.stats['single'].acceptance():.2f},"
+                f" flow {sampler.stats[phase].recent_acceptance():.2f} accepted;"
+                f" {sampler.production_samples} samples")
 
     def show(sampler):
-        if not tty and sampler.cycle % 50:
+        nonlocal bar
+        if not tty:
+            if sampler.cycle % 50 == 0:
+                click.echo(f"{describe(sampler)}; elapsed {sampler.elapsed_s / 60:.1f} min", err=True)
             return
-        phase = "production" if sampler.production else "training"
-        stats = sampler.stats[phase]
-        line = (f"cycle {sampler.cycle} {phase} elapsed {sampler.elapsed_s / 60:.1f} min"
-                f" one-torsion acceptance {sampler.stats['single'].acceptance():.3f}"
-                f" flow acceptance {stats.recent_acceptance():.3f}"
-                f" samples {sampler.production_samples}")
-        click.echo(("\r" + line) if tty else line, err=True, nl=not tty)
+        if bar is None:
+            bar = click.progressbar(length=1000, file=sys.stderr, show_eta=True, width=24)
+            bar.__enter__()
+        bar.label = describe(sampler)
+        bar.update(int(1000 * fraction(sampler)) - bar.pos)
+        if fraction(sampler) >= 1.0:
+            bar.__exit__(None, None, None)
 
     return show
 
@@ -306,7 +328,7 @@ def run(run_dir, hours, samples, temperature_K, walkers, training_cycles, langev
     options = BuildOptions(**{k: v for k, v in kwargs.items() if k != "input_spec"})
     torch.set_num_threads(1)  # OpenMM and torch alternate; one thread each avoids oversubscription
     sampler = start_run(kwargs["input_spec"], Path(run_dir), options, settings, budget,
-                        n_walkers=walkers, platform=platform, progress=_progress_printer(),
+                        n_walkers=walkers, platform=platform, progress=_progress_printer(budget),
                         stop_when=_narrow_enough(until_width))
     click.echo(f"\nrun finished at cycle {sampler.cycle}: {sampler.production_samples} production"
                f" samples in {run_dir}", err=True)
@@ -326,11 +348,11 @@ def resume(run_dir, hours, samples):
     """
     import torch
 
-    from hopwell.run import resume_run
+    from hopwell.run import resume_run, saved_budget
 
-    budget = None if hours is None and samples is None else _budget(hours, samples)
+    budget = saved_budget(Path(run_dir)) if hours is None and samples is None else _budget(hours, samples)
     torch.set_num_threads(1)
-    sampler = resume_run(Path(run_dir), budget, progress=_progress_printer())
+    sampler = resume_run(Path(run_dir), budget, progress=_progress_printer(budget))
     click.echo(f"\nrun finished at cycle {sampler.cycle}: {sampler.production_samples} production"
                f" samples in {run_dir}", err=True)
 
@@ -438,8 +460,8 @@ def demo(run_dir, minutes):
     settings = SamplerSettings(langevin_steps=200, proposals_per_cycle=32, training_cycles=10**9,
                                training_seconds=0.3 * minutes * 60.0)
     click.echo(f"hopwell demo: {spec}, {minutes:g} minutes of sampling", err=True)
-    start_run(spec, Path(run_dir), BuildOptions(), settings, Budget(seconds=minutes * 60.0),
-              progress=_progress_printer())
+    budget = Budget(seconds=minutes * 60.0)
+    start_run(spec, Path(run_dir), BuildOptions(), settings, budget, progress=_progress_printer(budget))
     summary = analyse(Path(run_dir), states_file=_systems_dir() / "demo_amide_states.toml")
     page = write_report(Path(run_dir), summary)
     click.echo("")

@@ -96,12 +96,17 @@ def load_sampler(run_dir: Path) -> Sampler:
     return sampler
 
 
+def saved_budget(run_dir: Path) -> Budget:
+    """The budget a run was started with."""
+    saved = RunStore.open(Path(run_dir)).config()["budget"]
+    return Budget(samples=saved.get("samples"), seconds=saved.get("seconds"))
+
+
 def resume_run(run_dir: Path, budget: Budget | None = None, progress=None, stop_when=None) -> Sampler:
     """Continue a run from its newest checkpoint, with its own budget unless one is given."""
     sampler = load_sampler(run_dir)
     if budget is None:
-        saved = sampler.store.config()["budget"]
-        budget = Budget(samples=saved.get("samples"), seconds=saved.get("seconds"))
+        budget = saved_budget(run_dir)
     sampler.store.log(f"resumed at cycle {sampler.cycle}")
     sampler.run(budget, progress, stop_when)
     return sampler
