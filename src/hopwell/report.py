@@ -185,6 +185,10 @@ def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict
         "walkers": int(n_walkers),
         "transitions": int(transitions),
         "split_rhat": rhats,
+        "per_walker_populations": [
+            [float(np.mean(row == s)) for s in range(n_states)] for row in series
+        ],
+        "transitions_per_walker": [int(stats.count_transitions(row)) for row in series],
         "flow_acceptance_production": (production.flow_accepted / len(production.proposal_block)
                                        if len(production.proposal_block) else None),
         "importance_sampling": importance,
@@ -427,6 +431,11 @@ flow acceptance {"-" if acceptance is None else f"{100 * acceptance:.1f}%"}.</p>
 <th>dG (kJ/mol) vs {html.escape(summary['dG_reference'])}</th><th>dG 95% interval</th></tr>{rows}</table>
 {"".join(f"<p>{html.escape(k)}: {v['mean']:.2f} (95% {v['ci95_low']:.2f} - {v['ci95_high']:.2f})</p>"
          for k, v in summary.get("observables", {}).items())}
+<h2>Walkers</h2>
+<table id="walkers"><tr><th>walker</th>{"".join(f"<th>{html.escape(s['name'])} (%)</th>" for s in summary["states"])}<th>transitions</th></tr>
+{"".join(f"<tr><td>{w}</td>" + "".join(f"<td>{100 * p:.1f}</td>" for p in row) + f"<td>{t}</td></tr>"
+         for w, (row, t) in enumerate(zip(summary["per_walker_populations"], summary["transitions_per_walker"])))}
+</table>
 <p><img id="population-plot" alt="populations" src="data:image/png;base64,{_population_plot(summary)}"></p>
 <h2>Free energy along the state torsions</h2>
 <p><img id="torsion-plot" alt="torsion free energies" src="data:image/png;base64,{_torsion_plot(summary)}"></p>
