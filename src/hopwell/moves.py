@@ -62,6 +62,15 @@ def moving_torsions(zmat: ZMatrix, mol: Chem.Mol) -> np.ndarray:
     return np.array(rows, dtype=int)
 
 
+def _seed_cpu(generator: torch.Generator) -> None:
+    """Seed torch's global CPU generator (which zuko samples from) from ``generator``.
+
+    Only the CPU generator: ``torch.manual_seed`` also seeds accelerator back-ends and costs
+    about 1.4 ms a call, measured here as ~30% of a cycle for small molecules.
+    """
+    torch.default_generator.manual_seed(int(torch.randint(0, 2**62, (1,), generator=generator)))
+
+
 def _mixture(loc: torch.Tensor, kappa: torch.Tensor, logits: torch.Tensor):
     return Independent(MixtureSameFamily(Categorical(logits=logits), VonMises(loc, kappa)), 1)
 
@@ -110,9 +119,12 @@ class TorsionFlow(torch.nn.Module):
         """Set every spline to the identity (zero the hyper-networks' output layers)."""
         with torch.no_grad():
             for transform in self.flow.transform.transforms:
-                last = transform.hyper[-1]
-                last.weight.zero_()
-                last.bias.zero_()
+                # One feature: zuko keeps the spline parameters themselves (``phi``); more
+                # features: the output layer of the autoregressive hyper-network.
+                params = list(transform.phi) if hasattr(transform, "phi") else [
+                    transform.hyper[-1].weight, transform.hyper[-1].bias]
+                for param in params:
+                    param.zero_()
 
     def base_log_prob(self, torsions_rad: torch.Tensor) -> torch.Tensor:
         """log density of the base alone, shape ``(batch,)``."""
@@ -134,7 +146,7 @@ class TorsionFlow(torch.nn.Module):
         with torch.no_grad():
             if generator is not None:
                 state = torch.get_rng_state()
-                torch.manual_seed(int(torch.randint(0, 2**62, (1,), generator=generator)))
+                _seed_cpu(generator)
             try:
                 t, log_q = self.flow().rsample_and_log_prob((n,))
             finally:
@@ -162,7 +174,7 @@ class TorsionFlow(torch.nn.Module):
                            torch.zeros(len(index), 1, dtype=torch.float64))
         if generator is not None:
             state = torch.get_rng_state()
-            torch.manual_seed(int(torch.randint(0, 2**62, (1,), generator=generator)))
+            _seed_cpu(generator)
         try:
             value = mixture.sample()
         finally:

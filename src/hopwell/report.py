@@ -147,6 +147,9 @@ def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict
     populated = int((pops.populations >= st.POPULATION_FLOOR).sum())
     if populated > 1 and transitions < MIN_TRANSITIONS * populated:
         reasons.append(f"only {transitions} transitions between states")
+    if pops.block_length >= series.shape[1]:
+        reasons.append("the series are shorter than one bootstrap block (10 x the statistical"
+                       " inefficiency): the intervals are not defined")
     if pops.ess < MIN_ESS:
         reasons.append(f"effective sample size {pops.ess:.0f} < {MIN_ESS}")
     # The importance estimate normalizes within blocks of a few tens of proposals, which biases

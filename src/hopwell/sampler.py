@@ -187,8 +187,11 @@ class Sampler:
         if len(self.moving) == 0:
             raise ValueError("the molecule has no torsion about an acyclic bond to sample")
         seeds_ic = cartesian_to_internal(self.zmat, torch.as_tensor(seeds_nm))
-        self.flow = TorsionFlow(seeds_ic.torsions_rad[:, self.moving].numpy(), transforms=settings.flow_layers,
-                                hidden=settings.flow_hidden, bins=settings.flow_bins)
+        with torch.random.fork_rng():  # the network's initial weights follow settings.seed
+            torch.manual_seed(settings.seed)
+            self.flow = TorsionFlow(seeds_ic.torsions_rad[:, self.moving].numpy(),
+                                    transforms=settings.flow_layers, hidden=settings.flow_hidden,
+                                    bins=settings.flow_bins)
         self.optimizer = torch.optim.Adam(self.flow.parameters(), lr=settings.learning_rate)
         n_walkers = n_walkers or len(seeds_nm)
         self.positions_nm = np.stack([seeds_nm[k % len(seeds_nm)] for k in range(n_walkers)])
