@@ -30,7 +30,7 @@ from rdkit import Chem
 from torch.distributions import Categorical, Independent, MixtureSameFamily, VonMises
 from zuko.lazy import UnconditionalDistribution
 
-from hopwell.flow.base import _fit_von_mises_mixture
+from hopwell.flow.base import fit_von_mises_mixture
 from hopwell.internal import ZMatrix
 
 FLOOR_WEIGHT = 0.05
@@ -78,7 +78,7 @@ def _mixture(loc: torch.Tensor, kappa: torch.Tensor, logits: torch.Tensor):
 def _base_parameters(torsions_rad: np.ndarray) -> tuple[torch.Tensor, ...]:
     """Mixture parameters (loc, kappa, logits), each ``(n_moving, N_COMPONENTS + 1)``."""
     n = torsions_rad.shape[1]
-    loc, kappa, weight = _fit_von_mises_mixture(
+    loc, kappa, weight = fit_von_mises_mixture(
         torsions_rad, N_COMPONENTS, np.full(n, FLOOR_WEIGHT), np.full(n, MAX_KAPPA)
     )
     loc = np.concatenate([loc, np.zeros((n, 1))], 1)

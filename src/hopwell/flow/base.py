@@ -87,7 +87,7 @@ def _kappa_from_resultant(r: np.ndarray) -> np.ndarray:
                              1.0 / (r ** 3 - 4 * r ** 2 + 3 * r)))
 
 
-def _fit_von_mises_mixture(torsions: np.ndarray, n_components: int, uniform_weight: np.ndarray,
+def fit_von_mises_mixture(torsions: np.ndarray, n_components: int, uniform_weight: np.ndarray,
                            max_kappa: np.ndarray) -> tuple[np.ndarray, ...]:
     """EM fit of ``uniform_weight / 2pi + (1 - uniform_weight) sum_k w_k vM(mu_k, kappa_k)``.
 
@@ -201,7 +201,7 @@ class InternalBase(torch.nn.Module):
             raise ValueError(f"is_principal must have shape ({n_torsions},), got {principal.shape}")
         max_kappa = np.where(principal, MIN_TORSION_WIDTH_RAD, MIN_OFFSET_WIDTH_RAD) ** -2.0
         floor_weight = np.where(principal, uniform_weight, OFFSET_UNIFORM_WEIGHT)
-        loc, kappa, weight = _fit_von_mises_mixture(x[:, n_ba:].numpy(), n_components,
+        loc, kappa, weight = fit_von_mises_mixture(x[:, n_ba:].numpy(), n_components,
                                                     floor_weight, max_kappa)
         mixture = (torch.from_numpy(a) for a in (loc, kappa, weight, floor_weight))
         return cls(mean, width, *mixture)
