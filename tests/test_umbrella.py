@@ -66,15 +66,16 @@ def exact_populations() -> np.ndarray:
     return np.array([quad(weight, lo, hi)[0] / total for lo, hi in ranges])
 
 
-def test_restraint_energy_matches_openmm():
+@pytest.mark.parametrize("torsions, offsets_deg", [([(0, 1, 2, 3)], [0.0]),
+                                                   ([(0, 1, 2, 3), (0, 1, 2, 4)], [0.0, 120.0])])
+def test_restraint_energy_matches_openmm(torsions, offsets_deg):
     # The restraint hopwell hands MBAR (computed from its own dihedrals) against the energy OpenMM
-    # computes for the CustomTorsionForce, for two torsions about one bond restrained together
-    # with an offset, at centres on both sides of +-180 degrees. Five particles, no other forces.
+    # computes for the force it adds, for one torsion and for two about one bond with an offset,
+    # at centres on both sides of +-180 degrees. Five particles, no other forces.
     system = openmm.System()
     for _ in range(5):
         system.addParticle(12.0)
-    torsions = [(0, 1, 2, 3), (0, 1, 2, 4)]
-    offsets_rad = np.radians([0.0, 120.0])
+    offsets_rad = np.radians(offsets_deg)
     evaluator = EnergyEvaluator(restrained_copy(system, torsions, offsets_rad), TEMPERATURE_K)
     k = 50.0
     evaluator.context.setParameter("umbrella_k", k)
