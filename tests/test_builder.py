@@ -137,6 +137,29 @@ def test_peptide_hydrogens_and_stereo(systems_dir):
     assert [label for _, label in Chem.FindMolChiralCenters(molsys.mol)] == ["S"]
 
 
+def test_backbone_seeds_are_minima_in_distinct_regions(systems_dir):
+    import mdtraj as md
+
+    from hopwell.systems.backbone import BACKBONE_STATES, backbone_state
+
+    plain = build(str(systems_dir / "ace_ala_nme.pdb"), BuildOptions(backbone_seeds=False))
+    molsys = build(str(systems_dir / "ace_ala_nme.pdb"))
+    assert len(plain.seeds_nm) == 1 and len(molsys.seeds_nm) > 2
+    # The input comes first (heavy atoms: Modeller's hydrogen placement varies between builds).
+    heavy = [a.GetIdx() for a in molsys.mol.GetAtoms() if a.GetAtomicNum() > 1]
+    np.testing.assert_allclose(molsys.seeds_nm[0, heavy], plain.seeds_nm[0, heavy], atol=1e-6)
+    # Regions from mdtraj's phi/psi (an outside geometry), not from the builder's own numbers.
+    traj = md.Trajectory(molsys.seeds_nm.astype(np.float32), md.Topology.from_openmm(molsys.topology))
+    phi, psi = (np.degrees(f(traj)[1][:, 0]) for f in (md.compute_phi, md.compute_psi))
+    regions = [BACKBONE_STATES[k] for k in backbone_state(phi, psi)]
+    assert len(set(regions)) == len(regions), regions
+    # Vacuum Ace-Ala-NMe has a C7ax minimum at phi > 0 (a fact of the trade for this peptide).
+    assert "C7ax" in regions
+    # Minimized seeds: every added seed sits where the force nearly vanishes (OpenMM's forces).
+    forces = EnergyEvaluator(molsys.system, 300.0).forces_kj_nm(molsys.seeds_nm[1:])
+    assert np.abs(forces).max() < 20.0
+
+
 def test_peptide_obc2_matches_openmm_route(systems_dir):
     molsys = build(str(systems_dir / "ace_ala_nme.pdb"), BuildOptions(solvent="obc2"))
     # Reference: OpenMM's own implicit-solvent route (CustomGBForce from implicit/obc2.xml).

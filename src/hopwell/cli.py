@@ -76,6 +76,8 @@ def _builder_options(fn):
                      help="For SMILES with unspecified stereo, take one stereoisomer."),
         click.option("--seed", "random_seed", type=int, default=2024, show_default=True,
                      help="Random seed."),
+        click.option("--backbone-seeds/--no-backbone-seeds", default=True, show_default=True,
+                     help="Peptides: add a minimized seed in each backbone region a residue reaches."),
     ]
     for option in reversed(options):
         fn = option(fn)
@@ -83,13 +85,13 @@ def _builder_options(fn):
 
 
 def _build(input_spec, forcefield, solvent, dielectric, template, n_seeds, add_hydrogens,
-           pick_isomer, random_seed):
+           pick_isomer, random_seed, backbone_seeds):
     from hopwell.systems.builder import BuildOptions, build
 
     options = BuildOptions(
         forcefield=forcefield, solvent=solvent, dielectric=dielectric, n_seeds=n_seeds,
         template=template, add_hydrogens=add_hydrogens, pick_isomer=pick_isomer,
-        random_seed=random_seed,
+        random_seed=random_seed, backbone_seeds=backbone_seeds,
     )
     return build(input_spec, options)
 
@@ -184,8 +186,13 @@ def _sampler_options(fn):
         click.option("--until-width", type=float, default=None,
                      help="Stop early once the verdict is converged and every 95%% interval is"
                           " narrower than this many percentage points (checked every 200 cycles)."),
-        click.option("--method", type=click.Choice(["flow", "md"]), default="flow", show_default=True,
-                     help="flow: Langevin plus flow moves; md: plain Langevin MD (baseline)."),
+        click.option("--method", type=click.Choice(["flow", "md", "remd"]), default="flow", show_default=True,
+                     help="flow: Langevin plus flow moves; md: plain Langevin MD; remd: temperature"
+                          " replica exchange (the last two are baselines)."),
+        click.option("--replicas", type=int, default=6, show_default=True,
+                     help="remd: number of temperatures (geometric ladder)."),
+        click.option("--top-temperature", "top_temperature_K", type=float, default=600.0,
+                     show_default=True, help="remd: the ladder's highest temperature (K)."),
         click.option("--local-move", type=click.Choice(["langevin", "ghmc"]), default="langevin",
                      show_default=True, help="Local move: unadjusted Langevin or exact GHMC."),
     ]
@@ -244,8 +251,9 @@ def _progress_printer(budget):
 
     def describe(sampler):
         phase = "production" if sampler.production else "training"
+        darts = f", darts {sampler.stats['dart'].acceptance():.2f}" if sampler.stats["dart"].proposed else ""
         return (f"{phase} cycle {sampler.cycle}: one-torsion {sampler.stats['single'].acceptance():.2f},"
-                f" flow {sampler.stats[phase].recent_acceptance():.2f} accepted;"
+                f" flow {sampler.stats[phase].recent_acceptance():.2f}{darts} accepted;"
                 f" {sampler.production_samples} samples")
 
     def show(sampler):
@@ -298,7 +306,7 @@ def _load_config(ctx, param, value):
 @_sampler_options
 @_fail_cleanly
 def run(run_dir, hours, samples, temperature_K, walkers, training_cycles, langevin_steps,
-        proposals, platform, method, local_move, until_width, **kwargs):
+        proposals, platform, method, replicas, top_temperature_K, local_move, until_width, **kwargs):
     """Sample the conformers of INPUT into a new run directory.
 
     \b
@@ -313,7 +321,7 @@ def run(run_dir, hours, samples, temperature_K, walkers, training_cycles, langev
     from hopwell.systems.builder import BuildOptions
 
     budget = _budget(hours, samples)
-    if method == "md":  # no flow to train: every cycle is production
+    if method in ("md", "remd"):  # no flow to train: every cycle is production
         training_cycles, hours_share = 0, None
     else:
         hours_share = None if training_cycles is not None or hours is None else 0.3 * hours * 3600.0
@@ -322,9 +330,12 @@ def run(run_dir, hours, samples, temperature_K, walkers, training_cycles, langev
         temperature_K=temperature_K, langevin_steps=langevin_steps, proposals_per_cycle=proposals,
         seed=kwargs["random_seed"], method=method, local_move=local_move,
         training_cycles=training_cycles, training_seconds=hours_share,
+        replicas=replicas, top_temperature_K=top_temperature_K,
     )
     if temperature_K <= 0 or langevin_steps < 1 or proposals < 1:
         raise InputError("--temperature, --langevin-steps and --proposals must be positive")
+    if method == "remd" and (replicas < 2 or top_temperature_K <= temperature_K):
+        raise InputError("remd needs --replicas of at least 2 and --top-temperature above --temperature")
     options = BuildOptions(**{k: v for k, v in kwargs.items() if k != "input_spec"})
     torch.set_num_threads(1)  # OpenMM and torch alternate; one thread each avoids oversubscription
     sampler = start_run(kwargs["input_spec"], Path(run_dir), options, settings, budget,
@@ -432,6 +443,59 @@ def status(run_dir, as_json):
         if isinstance(value, float):
             value = f"{value:.3f}"
         click.echo(f"{key.replace('_', ' '):<28} {'-' if value is None else value}")
+
+
+@main.command()
+@_builder_options
+@click.option("-o", "--output", "out_dir", required=True, type=click.Path(file_okay=False),
+              help="Directory to create (runs/ and the comparison files).")
+@click.option("--budget", "budget_min", type=float, required=True, help="Sampling minutes per run.")
+@click.option("--repeats", type=int, default=2, show_default=True, help="Runs per method (seeds differ).")
+@click.option("--methods", default="flow,md,remd", show_default=True, help="Comma-separated methods.")
+@click.option("--reference", "reference_file", type=click.Path(dir_okay=False), default=None,
+              help="TOML of reference populations (see hopwell.compare).")
+@click.option("--states", "states_file", type=click.Path(dir_okay=False), default=None,
+              help="States TOML file [default: backbone regions or automatic torsion wells].")
+@click.option("--tolerance", type=float, default=1.0, show_default=True,
+              help="Error (percentage points) whose time-to-reach is reported.")
+@click.option("--jobs", type=int, default=2, show_default=True,
+              help="Runs at a time, each in its own process.")
+@click.option("--temperature", "temperature_K", type=float, default=300.0, show_default=True,
+              help="Temperature (K).")
+@_fail_cleanly
+def compare(out_dir, budget_min, repeats, methods, reference_file, states_file, tolerance, jobs,
+            temperature_K, **kwargs):
+    """Run each method REPEATS times on INPUT with equal budgets and compare them.
+
+    \b
+    Example:
+      hopwell compare systems/ace_ala_nme.pdb -o bench --budget 20 \\
+          --reference systems/ace_ala_nme_reference.toml
+    """
+    from hopwell import compare as cmp
+    from hopwell.sampler import SamplerSettings
+    from hopwell.systems.builder import BuildOptions, build
+
+    chosen = [m.strip() for m in methods.split(",") if m.strip()]
+    unknown = [m for m in chosen if m not in cmp.METHODS]
+    if unknown or not chosen:
+        raise InputError(f"unknown method(s) {', '.join(unknown) or '(none)'}; use {','.join(cmp.METHODS)}")
+    if budget_min <= 0 or repeats < 1 or jobs < 1 or tolerance <= 0 or temperature_K <= 0:
+        raise InputError("--budget, --repeats, --jobs, --tolerance and --temperature must be positive")
+    references = cmp.read_reference(reference_file) if reference_file else None
+    out = Path(out_dir)
+    if out.exists():
+        raise InputError(f"{out}: already exists; choose a new directory")
+    options = BuildOptions(**{k: v for k, v in kwargs.items() if k != "input_spec"})
+    build(kwargs["input_spec"], options)  # bad input fails here, before any run starts
+    settings = SamplerSettings(temperature_K=temperature_K, seed=kwargs["random_seed"])
+    plan = cmp.plan_runs(kwargs["input_spec"], out, chosen, repeats, budget_min * 60.0, options, settings)
+    click.echo(f"hopwell compare: {len(plan)} runs of {budget_min:g} min, {jobs} at a time", err=True)
+    cmp.run_jobs(plan, jobs, progress=lambda job: click.echo(f"  done: {job['dir']}", err=True))
+    comparison = cmp.compare_runs(plan, budget_min * 60.0, references, tolerance / 100.0, states_file)
+    paths = cmp.write_outputs(out, comparison)
+    click.echo(cmp.format_table(comparison))
+    click.echo(f"comparison: {paths[0]}")
 
 
 @main.command()

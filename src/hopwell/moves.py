@@ -43,8 +43,9 @@ def moving_torsions(zmat: ZMatrix, mol: Chem.Mol) -> np.ndarray:
     """Indices of the torsion rows the flow proposes: proper principal torsions, acyclic bonds.
 
     A row qualifies when its torsion is a proper dihedral (its reference atom bonded to the
-    angle reference, t-a-b-atom), it is principal (offsets follow it), and the bond a-b is not in
-    a ring. Improper-style rows (reference bonded to b) place an atom around its own centre and
+    angle reference, t-a-b-atom), it is principal (offsets follow it), the bond a-b is not in
+    a ring, and every other neighbour of b is placed about the same bond a-b (so the move is a
+    rigid rotation of b's substituents). Improper-style rows (reference bonded to b) place an atom around its own centre and
     behave like angles; moving them was measured to raise energies by hundreds of kJ/mol.
 
     Returns
@@ -52,12 +53,20 @@ def moving_torsions(zmat: ZMatrix, mol: Chem.Mol) -> np.ndarray:
     numpy.ndarray of int, shape ``(n_moving,)``
         Positions in the Z-matrix torsion array (row ``k`` places atom ``order[k + 3]``).
     """
+    placed_about = {}  # atom -> (bond_ref, angle_ref) of its row; None for the first three
+    for row, atom in enumerate(zmat.order):
+        placed_about[int(atom)] = None if row < 3 else (int(zmat.bond_ref[row]), int(zmat.angle_ref[row]))
     rows = []
     for k in np.flatnonzero(zmat.is_principal):
         row = k + 3
         b, a, t = (int(zmat.bond_ref[row]), int(zmat.angle_ref[row]), int(zmat.torsion_ref[row]))
         proper = mol.GetBondBetweenAtoms(t, a) is not None
-        if proper and not mol.GetBondBetweenAtoms(b, a).IsInRing():
+        # A rigid rotation about a-b turns every other neighbour of b with it; a neighbour
+        # placed otherwise (one of the first three atoms) would be left behind, and the
+        # "torsion" would bend the angles at b instead.
+        rigid = all(placed_about[n.GetIdx()] == (b, a)
+                    for n in mol.GetAtomWithIdx(b).GetNeighbors() if n.GetIdx() != a)
+        if proper and rigid and not mol.GetBondBetweenAtoms(b, a).IsInRing():
             rows.append(int(k))
     return np.array(rows, dtype=int)
 

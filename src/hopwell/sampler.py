@@ -38,11 +38,12 @@ import torch
 from rdkit import Chem
 
 from hopwell.atomic import atomic_write_bytes
+from hopwell.darts import build_darts
 from hopwell.energy import EnergyEvaluator
 from hopwell.guards import ProposalGuard
 from hopwell.internal import build_zmatrix, cartesian_to_internal, internal_to_cartesian
 from hopwell.moves import TorsionFlow, moving_torsions
-from hopwell.store import MOVE_FLOW, MOVE_LANGEVIN, RunStore
+from hopwell.store import MOVE_FLOW, MOVE_LANGEVIN, STATE_FIELDS, RunStore
 from hopwell.systems.builder import rotatable_bonds
 
 # Energy rise (kJ/mol) over one Langevin segment taken as an explosion, not thermal motion:
@@ -58,9 +59,12 @@ class SamplerSettings:
     Attributes
     ----------
     temperature_K : float
-    method : {"flow", "md"}
+    method : {"flow", "md", "remd"}
         "flow": Langevin plus flow and one-torsion moves; "md": the Langevin segments alone
-        (the plain-MD baseline, from the same seeds, into the same kind of run directory).
+        (the plain-MD baseline, from the same seeds, into the same kind of run directory);
+        "remd": temperature replica exchange (:mod:`hopwell.replica`).
+    replicas, top_temperature_K : int, float
+        The "remd" ladder: this many temperatures, geometric from ``temperature_K`` to the top.
     local_move : {"langevin", "ghmc"}
         Unadjusted Langevin or exact GHMC segments (:mod:`hopwell.integrators`).
     timestep_fs, friction_per_ps : float
@@ -72,6 +76,9 @@ class SamplerSettings:
     single_moves_per_cycle : int
         One-torsion proposals per walker per cycle, each from the base's marginal of one
         randomly chosen moving torsion (see :meth:`Sampler._single_moves`).
+    darts_per_cycle : int
+        Seed darts per walker per cycle (:mod:`hopwell.darts`): exact jumps between the basins
+        of the seed structures.
     training_cycles : int
         Most cycles of the training phase; production follows with the flow frozen.
     training_seconds : float or None
@@ -92,12 +99,15 @@ class SamplerSettings:
 
     temperature_K: float = 300.0
     method: str = "flow"
+    replicas: int = 6
+    top_temperature_K: float = 600.0
     local_move: str = "langevin"
     timestep_fs: float = 1.0
     friction_per_ps: float = 1.0
     langevin_steps: int = 250
     proposals_per_cycle: int = 32
     single_moves_per_cycle: int = 16
+    darts_per_cycle: int = 4
     training_cycles: int = 200
     training_seconds: float | None = None
     fit_every: int = 4
@@ -186,6 +196,9 @@ class Sampler:
         self.moving = moving_torsions(self.zmat, mol)
         if len(self.moving) == 0:
             raise ValueError("the molecule has no torsion about an acyclic bond to sample")
+        self.darts = None
+        if settings.method == "flow" and settings.darts_per_cycle > 0:
+            self.darts = build_darts(self.zmat, mol, self.moving, self.evaluator.minimize(seeds_nm))
         seeds_ic = cartesian_to_internal(self.zmat, torch.as_tensor(seeds_nm))
         with torch.random.fork_rng():  # the network's initial weights follow settings.seed
             torch.manual_seed(settings.seed)
@@ -203,10 +216,12 @@ class Sampler:
         self.elapsed_s = 0.0
         self.next_chunk = 0
         self.buffer: deque = deque(maxlen=settings.buffer_size)
-        self.stats = {"training": CycleStats(), "production": CycleStats(), "single": CycleStats()}
+        self.stats = {"training": CycleStats(), "production": CycleStats(), "single": CycleStats(),
+                      "dart": CycleStats()}
         self.production_samples = 0
         self._stop = False
         self._pending: list[tuple[dict, dict]] = []
+        self._cycle_start = time.perf_counter()
 
     # -- phase ----------------------------------------------------------------------------
     @property
@@ -327,6 +342,32 @@ class Sampler:
                 self.positions_nm[walker], self.energies_kj[walker] = positions[hits[0]], energy[hits[0]]
             remaining -= used
 
+    def _darts(self, walker: int) -> None:
+        """Seed darts (see :mod:`hopwell.darts`); a state outside every region stays put."""
+        stats, kT = self.stats["dart"], self.evaluator.kT
+        for _ in range(self.settings.darts_per_cycle):
+            with torch.no_grad():
+                current = cartesian_to_internal(self.zmat, torch.as_tensor(self.positions_nm[walker:walker + 1]))
+            source = int(self.darts.region(current.torsions_rad.numpy())[0])
+            if source < 0:
+                continue
+            target = int(self.rng.integers(0, self.darts.n_centres - 1))
+            target += target >= source  # uniform over the other centres
+            bonds, angles, torsions = self.darts.displace(current, source, target)
+            stats.proposed += 1
+            if not bool(((angles > 0) & (angles < np.pi)).all()) or bool((bonds <= 0).any()):
+                continue
+            with torch.no_grad():
+                positions, log_j = internal_to_cartesian(self.zmat, bonds, angles, torsions)
+            positions = positions.numpy()
+            if self.guard(positions).rejected[0]:
+                continue
+            energy = float(self.evaluator.energies_kj(positions)[0])
+            log_alpha = -(energy - self.energies_kj[walker]) / kT + float(log_j[0] - current.log_jacobian[0])
+            if np.isfinite(energy) and np.log(self.rng.random()) < log_alpha:
+                stats.accepted += 1
+                self.positions_nm[walker], self.energies_kj[walker] = positions[0], energy
+
     def _fit(self) -> None:
         """Refit base and splines on the buffer; undo the refit if the flow diverges."""
         data = torch.as_tensor(np.stack(self.buffer))
@@ -352,19 +393,22 @@ class Sampler:
     def run_cycle(self) -> None:
         """One cycle over all walkers; queues the records for the next chunk."""
         production = self.production
-        states = {k: [] for k in ("positions_nm", "energy_kj", "walker", "cycle", "move", "accepted", "production")}
+        states = {k: [] for k in STATE_FIELDS}
         proposals = []
         for walker in range(self.n_walkers):
             self._langevin(walker)
             self._record_state(states, walker, MOVE_LANGEVIN, production)
             if self.settings.method == "md":
                 continue
-            block = self._propose(walker)
+            block = self._propose(walker) if self.settings.proposals_per_cycle else None
             if self.settings.single_moves_per_cycle:
                 self._single_moves(walker)
-            if production:
+            if self.darts is not None:
+                self._darts(walker)
+            if production and block is not None:
                 proposals.append(block)
-            self._record_state(states, walker, MOVE_FLOW, production, accepted=bool(block["accepted"].any()))
+            self._record_state(states, walker, MOVE_FLOW, production,
+                               accepted=block is not None and bool(block["accepted"].any()))
         if not production:
             with torch.no_grad():
                 ic = cartesian_to_internal(self.zmat, torch.as_tensor(np.stack(states["positions_nm"]), dtype=torch.float64))
@@ -384,6 +428,7 @@ class Sampler:
         states["move"].append(move)
         states["accepted"].append(accepted)
         states["production"].append(production)
+        states["time_s"].append(self.elapsed_s + time.perf_counter() - self._cycle_start)
 
     # -- persistence ----------------------------------------------------------------------
     def flush(self) -> None:
@@ -473,9 +518,9 @@ class Sampler:
                 self.flush()  # checkpoint zero: resume works even before the first chunk
             self._maybe_end_training()
             while not self._stop and not budget.done(self.production_samples, self.elapsed_s):
-                start = time.perf_counter()
+                self._cycle_start = time.perf_counter()
                 self.run_cycle()
-                self.elapsed_s += time.perf_counter() - start
+                self.elapsed_s += time.perf_counter() - self._cycle_start
                 self._maybe_end_training()
                 if progress is not None:
                     progress(self)

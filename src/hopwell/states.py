@@ -2,7 +2,8 @@
 
 All functions are pure: torsion values in, state indices out. Geometry comes from mdtraj.
 
-Backbone regions (phi, psi in degrees; conventions vary, these are hopwell's):
+Backbone regions (phi, psi in degrees; conventions vary, these are hopwell's; the code is
+:func:`hopwell.systems.backbone.backbone_state`):
 
 =========  ======================  ======================
 state      phi                     psi
@@ -28,27 +29,13 @@ import mdtraj as md
 import numpy as np
 from rdkit import Chem
 
+from hopwell.systems.backbone import BACKBONE_STATES, backbone_state
 from hopwell.systems.builder import rotatable_bonds
 
-BACKBONE_STATES = ("C7eq", "C5/beta", "PII", "alphaR", "C7ax", "alphaL")
 N_BINS = 72  # 5-degree histogram bins for the torsion marginals
 SMOOTH_DEG = 15.0  # width of the wrapped Gaussian smoothing the marginals
 MIN_WELL_MASS = 0.01  # wells with less pooled mass are merged into a neighbour
 POPULATION_FLOOR = 0.005  # combinations below this are reported together as "other"
-
-
-def backbone_state(phi_deg: np.ndarray, psi_deg: np.ndarray) -> np.ndarray:
-    """Backbone region index (into :data:`BACKBONE_STATES`) for each (phi, psi), degrees."""
-    phi, psi = np.asarray(phi_deg), np.asarray(psi_deg)
-    extended = (psi >= 120) | (psi < -120)
-    out = np.full(phi.shape, BACKBONE_STATES.index("alphaR"))
-    left = phi < 0
-    out[left & (psi >= 0) & (psi < 120)] = BACKBONE_STATES.index("C7eq")
-    out[left & extended & (phi < -120)] = BACKBONE_STATES.index("C5/beta")
-    out[left & extended & (phi >= -120)] = BACKBONE_STATES.index("PII")
-    out[~left & (psi >= 0) & (psi < 120)] = BACKBONE_STATES.index("alphaL")
-    out[~left & ((psi >= 120) | (psi < 0))] = BACKBONE_STATES.index("C7ax")
-    return out
 
 
 def state_torsions(mol: Chem.Mol) -> list[tuple[tuple[int, int, int, int], int]]:

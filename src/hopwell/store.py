@@ -37,7 +37,9 @@ CONFIG_FILE = "run.toml"
 LOG_FILE = "progress.log"
 
 # Record fields stored per chain sample ("states") and per flow proposal ("proposals").
-STATE_FIELDS = ("positions_nm", "energy_kj", "walker", "cycle", "move", "accepted", "production")
+# "time_s" is the run's sampling time (resumes included) when the state was recorded.
+STATE_FIELDS = ("positions_nm", "energy_kj", "walker", "cycle", "move", "accepted", "production",
+                "time_s")
 PROPOSAL_FIELDS = ("positions_nm", "energy_kj", "log_q", "log_jacobian", "walker", "cycle", "accepted",
                    "rejected_by")
 MOVE_LANGEVIN, MOVE_FLOW = 0, 1

@@ -12,7 +12,7 @@ from rdkit import Chem
 from rdkit.Chem import rdMolDescriptors
 
 from hopwell.errors import InputError
-from hopwell.systems import amber, mmff, seeds
+from hopwell.systems import amber, backbone, mmff, seeds
 from hopwell.systems.inputs import ParsedInput, read_input
 from hopwell.systems.solvent import add_obc2
 
@@ -41,6 +41,9 @@ class BuildOptions:
         See :func:`hopwell.systems.inputs.read_input`.
     random_seed : int
         Seeds ETKDG embedding.
+    backbone_seeds : bool
+        Peptides: add a minimized seed in every backbone region each residue can reach
+        (:func:`hopwell.systems.backbone.backbone_seeds`).
     """
 
     forcefield: str | None = None
@@ -51,6 +54,7 @@ class BuildOptions:
     add_hydrogens: bool = False
     pick_isomer: bool = False
     random_seed: int = 2024
+    backbone_seeds: bool = True
 
 
 @dataclass
@@ -270,15 +274,23 @@ def _build_mmff(parsed: ParsedInput, forcefield: str, options: BuildOptions) -> 
 def _build_peptide(parsed: ParsedInput, options: BuildOptions) -> MolecularSystem:
     pdb = app.PDBFile(io.StringIO(parsed.pdb_text))
     system = amber.amber_system(pdb.topology, options.solvent)
+    seeds_nm, notes = conformer_positions_nm(parsed.mol), []
+    if options.backbone_seeds:
+        n_input = len(seeds_nm)
+        seeds_nm, regions = backbone.backbone_seeds(pdb.topology, system, seeds_nm)
+        if len(seeds_nm) > n_input:
+            notes.append(f"{len(seeds_nm) - n_input} backbone seeds added, minimized in regions "
+                         + ", ".join("/".join(r) for r in regions[n_input:]))
     return MolecularSystem(
         mol=parsed.mol,
         topology=pdb.topology,
         system=system,
-        seeds_nm=conformer_positions_nm(parsed.mol),
+        seeds_nm=seeds_nm,
         charges_e=amber.system_charges(system),
         kind="peptide",
         forcefield="amber14",
         solvent=options.solvent,
         dielectric="constant",
         source=parsed.source,
+        notes=notes,
     )
