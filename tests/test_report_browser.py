@@ -36,7 +36,7 @@ def test_report_renders_in_headless_chromium(tmp_path):
     assert "http://" not in html and "https://" not in html  # self-contained, no network
     # Every embedded plot is a decodable PNG with real content (Pillow as the reference decoder).
     images = re.findall(r'id="([a-z-]+)" alt="[^"]*" src="data:image/png;base64,([^"]+)"', html)
-    assert {name for name, _ in images} == {"population-plot", "torsion-plot", "running-plot"}
+    assert {name for name, _ in images} == {"population-plot", "torsion-plot", "running-plot", "acceptance-plot"}
     for _, data in images:
         pixels = np.asarray(Image.open(io.BytesIO(base64.b64decode(data))).convert("L"))
         assert pixels.shape[0] > 100 and pixels.std() > 10

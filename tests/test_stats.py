@@ -13,7 +13,6 @@ from hopwell.stats import (
     integrated_autocorrelation_time,
     kish_ess,
     population_estimate,
-    self_normalized_populations,
     split_rhat,
     statistical_inefficiency,
 )
@@ -220,25 +219,6 @@ def test_kish_ess():
     assert kish_ess(np.log(w) + 900.0) == pytest.approx(w.sum() ** 2 / (w**2).sum())
 
 
-def test_self_normalized_toy_problem():
-    rng = np.random.default_rng(10)
-    q = np.array([0.4, 0.3, 0.2, 0.1])  # proposal
-    target = np.array([0.1, 0.2, 0.3, 0.4])
-    n = 20_000
-    s = rng.choice(4, size=n, p=q)
-    lw = np.log(target / q)[s] + 7.0  # unnormalised
-    r = self_normalized_populations(s, lw, 4, rng, n_boot=400)
-    w = target / q
-    # Delta-method variance of self-normalised IS (Owen 2013, Monte Carlo
-    # theory, ch. 9): Var p_k = sum_j q_j w_j^2 (delta_jk - pi_k)^2 / n.
-    se = np.sqrt([np.sum(q * w**2 * ((np.arange(4) == k) - target[k]) ** 2) / n for k in range(4)])
-    np.testing.assert_allclose(r.replicates.std(axis=0), se, rtol=0.2)
-    assert np.all(np.abs(r.populations - target) < 4 * se)
-    # Kish ESS / n -> (E_q w)^2 / E_q w^2 = 1 / sum pi^2 / q.
-    assert r.ess / n == pytest.approx(1.0 / np.sum(target**2 / q), rel=0.05)
-    assert r.block_length == 1 and r.replicates.shape == (400, 4)
-
-
 GEN = np.random.default_rng(0)
 GOOD = np.zeros((2, 10), dtype=int)
 
@@ -262,9 +242,6 @@ GOOD = np.zeros((2, 10), dtype=int)
         lambda: split_rhat(np.zeros(10)),
         lambda: kish_ess([0.0, np.nan]),
         lambda: kish_ess([-np.inf, -np.inf]),
-        lambda: self_normalized_populations([0, 1], [0.0], 2, GEN),
-        lambda: self_normalized_populations(GOOD, np.zeros((2, 10)), 2, GEN),
-        lambda: self_normalized_populations([0, 1], [0.0, 0.0], 2, GEN, n_boot=0),
         lambda: free_energy_differences(population_estimate(GOOD, 2, GEN, n_boot=5), -1.0),
         lambda: free_energy_differences(population_estimate(GOOD, 2, GEN, n_boot=5), KT, 2),
     ],

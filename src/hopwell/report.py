@@ -25,18 +25,35 @@ from hopwell.energy import kT_kj
 from hopwell.errors import InputError
 from hopwell.observables import KARPLUS_HN_HA, j3_hn_ha, series_mean
 from hopwell.reweight import hamiltonian_log_weights, reweighted_populations, temperature_log_weights
-from hopwell.store import RunStore
+from hopwell.store import MOVE_FLOW, RunStore
 
 KJ_PER_KCAL = 4.184
 RHAT_MAX = 1.01  # Vehtari et al. 2021 recommend trusting estimates only below 1.01
 MIN_TRANSITIONS = 10  # per populated state, pooled over walkers (common practice, chosen)
 MIN_ESS = 100
 MIN_IS_ESS_FRACTION = 0.1  # importance ESS below 10% of proposals: weights too heavy-tailed
+ACCEPTANCE_WINDOWS = 50  # cycle windows over the whole run in the acceptance-over-time table
+
+
+@dataclass
+class CycleCounts:
+    """Flow-move counts per cycle over the whole run, training included; index = cycle.
+
+    The store records, per flow block (one walker, one cycle), whether any proposal was
+    accepted, and in production every proposal; one-torsion moves and seed darts are not
+    recorded per cycle.
+    """
+
+    blocks: np.ndarray  # (n_cycles,) flow blocks recorded
+    blocks_accepted: np.ndarray  # (n_cycles,) blocks with at least one accepted proposal
+    proposals: np.ndarray  # (n_cycles,) recorded proposals (production only)
+    proposals_accepted: np.ndarray  # (n_cycles,)
+    production: np.ndarray  # (n_cycles,) bool, the cycle's records are production
 
 
 @dataclass
 class Production:
-    """What the report needs from the production samples, gathered in one pass."""
+    """What the report needs from the store, gathered in one pass over the chunks."""
 
     dihedrals_rad: np.ndarray  # (n, n_torsions)
     energy_kj: np.ndarray
@@ -46,13 +63,43 @@ class Production:
     proposal_log_weight: np.ndarray  # (m,) -u - log q; -inf where a guard rejected
     proposal_block: np.ndarray  # (m,) one block per (walker, cycle)
     flow_accepted: int
+    acceptance: CycleCounts  # flow acceptance per cycle, training and production
+
+
+def _per_cycle(cycles: np.ndarray, flags: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Distinct cycles, records and flagged records per cycle of one chunk, each ``(n_distinct,)``."""
+    distinct, index = np.unique(cycles, return_inverse=True)
+    return (distinct, np.bincount(index, minlength=len(distinct)),
+            np.bincount(index, weights=flags.astype(float), minlength=len(distinct)).astype(np.int64))
+
+
+def _cycle_counts(n_cycles: int, block_parts: list, proposal_parts: list,
+                  production_cycles: list) -> CycleCounts:
+    """Sum the per-chunk :func:`_per_cycle` tallies into arrays of shape ``(n_cycles,)``."""
+    def total(parts, column):
+        out = np.zeros(n_cycles, dtype=np.int64)
+        for part in parts:
+            np.add.at(out, part[0], part[column])
+        return out
+
+    production = np.zeros(n_cycles, dtype=bool)
+    for cycles in production_cycles:
+        production[cycles] = True
+    return CycleCounts(total(block_parts, 1), total(block_parts, 2), total(proposal_parts, 1),
+                       total(proposal_parts, 2), production)
 
 
 def _gather(store: RunStore, topology: md.Topology, torsions, kT: float) -> Production:
     parts = {k: [] for k in ("d", "e", "w", "o", "pd", "pw", "pb")}
     accepted = 0
+    block_tallies, proposal_tallies, production_cycles = [], [], []
+    n_cycles = 0
     for chunk in store.iter_chunks():
         keep = chunk["state_production"].astype(bool)
+        n_cycles = max(n_cycles, 1 + int(chunk["state_cycle"].max(initial=-1)))
+        flow = chunk["state_move"] == MOVE_FLOW
+        block_tallies.append(_per_cycle(chunk["state_cycle"][flow], chunk["state_accepted"][flow]))
+        production_cycles.append(np.unique(chunk["state_cycle"][keep]))
         if keep.any():
             parts["d"].append(st.dihedrals(chunk["state_positions_nm"][keep], topology, torsions))
             parts["e"].append(chunk["state_energy_kj"][keep])
@@ -65,11 +112,58 @@ def _gather(store: RunStore, topology: md.Topology, torsions, kT: float) -> Prod
             parts["pd"].append(st.dihedrals(chunk["proposal_positions_nm"], topology, torsions))
             parts["pw"].append(np.where(ok, -np.where(ok, energy, 0.0) / kT - chunk["proposal_log_q"], -np.inf))
             parts["pb"].append(chunk["proposal_cycle"] * 1_000_000 + chunk["proposal_walker"])
+            proposal_tallies.append(_per_cycle(chunk["proposal_cycle"], chunk["proposal_accepted"]))
     if not parts["e"]:
         raise InputError(f"{store.path}: no production samples yet; let the run go on or resume it")
     if not parts["pd"]:
         parts["pd"], parts["pw"], parts["pb"] = [np.zeros((0, len(torsions)))], [np.zeros(0)], [np.zeros(0, int)]
-    return Production(*(np.concatenate(parts[k]) for k in ("d", "e", "w", "o", "pd", "pw", "pb")), accepted)
+    return Production(*(np.concatenate(parts[k]) for k in ("d", "e", "w", "o", "pd", "pw", "pb")), accepted,
+                      _cycle_counts(n_cycles, block_tallies, proposal_tallies, production_cycles))
+
+
+def _fraction(numerator: int, denominator: int) -> float | None:
+    return numerator / denominator if denominator else None
+
+
+def acceptance_over_time(counts: CycleCounts, n_windows: int = ACCEPTANCE_WINDOWS) -> list[dict]:
+    """Flow acceptance in windows of cycles, training and production apart.
+
+    Parameters
+    ----------
+    counts : CycleCounts
+    n_windows : int
+        About this many windows of equal width span the run; a window never straddles the
+        end of training, so each phase's last window may be shorter.
+
+    Returns
+    -------
+    list of dict
+        One per window with flow blocks, in cycle order: ``cycle_start`` (first cycle),
+        ``cycle_end`` (one past the last), ``phase`` ("training" or "production"),
+        ``flow_blocks``, ``flow_block_acceptance`` (fraction of blocks with an accepted
+        proposal), ``flow_proposals`` and ``flow_proposal_acceptance`` (fraction of proposals
+        accepted; None where proposals are not recorded, as in training).
+    """
+    n_cycles = len(counts.blocks)
+    width = max(1, -(-n_cycles // n_windows))
+    boundaries = np.flatnonzero(np.diff(counts.production.astype(int))) + 1
+    windows = []
+    for first, stop in zip(np.r_[0, boundaries], np.r_[boundaries, n_cycles]):
+        for start in range(int(first), int(stop), width):
+            end = min(start + width, int(stop))
+            blocks = int(counts.blocks[start:end].sum())
+            if not blocks:
+                continue
+            proposals = int(counts.proposals[start:end].sum())
+            windows.append({
+                "cycle_start": start, "cycle_end": end,
+                "phase": "production" if counts.production[start] else "training",
+                "flow_blocks": blocks,
+                "flow_block_acceptance": int(counts.blocks_accepted[start:end].sum()) / blocks,
+                "flow_proposals": proposals,
+                "flow_proposal_acceptance": _fraction(int(counts.proposals_accepted[start:end].sum()), proposals),
+            })
+    return windows
 
 
 def _series(values: np.ndarray, production: Production) -> np.ndarray:
@@ -194,7 +288,11 @@ def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict
         "transitions_per_walker": [int(stats.count_transitions(row)) for row in series],
         "flow_acceptance_production": (production.flow_accepted / len(production.proposal_block)
                                        if len(production.proposal_block) else None),
+        "move_acceptance": move_acceptance(store),
         "importance_sampling": importance,
+        # A run without flow proposals still records a (never accepted) flow-move state.
+        "acceptance_over_time": (acceptance_over_time(production.acceptance)
+                                 if config["sampler"].get("proposals_per_cycle", 1) else []),
     }
     if model.kind == "backbone":  # phi is the model's first dihedral
         phi = _series(production.dihedrals_rad[:, 0], production)
@@ -208,11 +306,11 @@ def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict
     summary["_torsion_names"] = (["phi", "psi"] if model.kind == "backbone" else
                                  ["-".join(str(a + 1) for a in atoms) for atoms, _ in model.torsions])
     if reweight:
-        summary["reweighted"] = _reweighted(store, reweight, production, series, model, pops, rng, n_boot)
+        summary["reweighted"] = _reweighted(store, reweight, production, series, model, rng, n_boot)
     return summary
 
 
-def _reweighted(store, reweight, production, series, model, pops, rng, n_boot) -> dict:
+def _reweighted(store, reweight, production, series, model, rng, n_boot) -> dict:
     temperature = float(store.config()["sampler"]["temperature_K"])
     new_temperature = float(reweight.get("temperature_K", temperature))
     log_w = temperature_log_weights(production.energy_kj, temperature, new_temperature) \
@@ -220,11 +318,11 @@ def _reweighted(store, reweight, production, series, model, pops, rng, n_boot) -
     overrides = {k: v for k, v in reweight.items() if k != "temperature_K"}
     if overrides:
         log_w = log_w + hamiltonian_log_weights(store, overrides, new_temperature, production.energy_kj)
-    result = reweighted_populations(series, _series(log_w, production), len(model.names),
-                                    pops.statistical_inefficiency, rng, n_boot)
+    result = reweighted_populations(series, _series(log_w, production), len(model.names), rng, n_boot)
     return {
         "to": {"temperature_K": new_temperature, **overrides},
         "effective_samples": float(result.ess),
+        "statistical_inefficiency": float(result.statistical_inefficiency),
         "states": [{"name": name, "population": float(result.populations[s]),
                     "ci95": [float(result.lower[s]), float(result.upper[s])]}
                    for s, name in enumerate(model.names)],
@@ -406,6 +504,51 @@ def _torsion_plot(summary: dict) -> str:
     return _png(fig)
 
 
+def _acceptance_plot(windows: list[dict]) -> str:
+    """Flow acceptance per cycle window, the end of training marked, as a base64 PNG."""
+    import matplotlib.pyplot as plt
+
+    fig, ax = plt.subplots(figsize=(6, 3.2), dpi=100)
+    middle = np.array([0.5 * (w["cycle_start"] + w["cycle_end"]) for w in windows])
+    blocks = np.array([100 * w["flow_block_acceptance"] for w in windows])
+    ax.plot(middle, blocks, marker="o", markersize=3, label="flow blocks with an accepted proposal")
+    proposals = np.array([np.nan if w["flow_proposal_acceptance"] is None else 100 * w["flow_proposal_acceptance"]
+                          for w in windows])
+    if np.isfinite(proposals).any():
+        ax.plot(middle, proposals, marker="s", markersize=3, label="flow proposals accepted")
+    production = [w["cycle_start"] for w in windows if w["phase"] == "production"]
+    if production and windows[0]["phase"] == "training":
+        ax.axvline(production[0], color="#555", linestyle="--", label="end of training")
+    ax.set_xlabel("cycle")
+    ax.set_ylabel("acceptance (%)")
+    ax.set_ylim(-2, 102)  # keep 0% and 100% markers clear of the frame
+    ax.legend(fontsize=7, loc="best")
+    return _png(fig)
+
+
+def move_acceptance(store: RunStore) -> dict:
+    """Whole-run acceptance by move type, from the checkpoint's counters (None where unused)."""
+    state = store.read_state()
+    saved = json.loads(str(state["stats"])) if state is not None else {}
+    names = {"training": "flow_training", "production": "flow_production", "single": "one_torsion",
+             "dart": "dart"}
+    return {label: (saved[key]["accepted"] / saved[key]["proposed"]
+                    if key in saved and saved[key]["proposed"] else None)
+            for key, label in names.items()}
+
+
+def _acceptance_section(summary: dict) -> str:
+    """The acceptance-over-time heading and plot; empty for runs without flow moves."""
+    windows = summary["acceptance_over_time"]
+    if not windows:
+        return ""
+    return f"""<h2>Acceptance over time</h2>
+<p>Flow moves per window of cycles; one-torsion moves and seed darts are not recorded per
+cycle, and single flow proposals only in production.</p>
+<p><img id="acceptance-plot" alt="flow acceptance" src="data:image/png;base64,{_acceptance_plot(windows)}"></p>
+"""
+
+
 def _html(summary: dict) -> str:
     verdict = summary["verdict"]
     colour = "#2e7d32" if verdict == "converged" else "#c62828"
@@ -429,7 +572,8 @@ td:first-child,th:first-child{{text-align:left}}.verdict{{color:{colour};font-si
 <ul>{reasons}</ul>
 <p>{summary['temperature_K']:.1f} K; {summary['samples']} production samples from {summary['walkers']}
 walker(s); effective samples {summary['effective_samples']:.0f}; {summary['transitions']} transitions;
-flow acceptance {"-" if acceptance is None else f"{100 * acceptance:.1f}%"}.</p>
+flow acceptance {"-" if acceptance is None else f"{100 * acceptance:.1f}%"}; over the whole run:
+{", ".join(f"{k.replace('_', ' ')} {100 * v:.1f}%" for k, v in summary["move_acceptance"].items() if v is not None) or "-"}.</p>
 <table id="populations"><tr><th>state</th><th>population (%)</th><th>95% interval (%)</th>
 <th>dG (kJ/mol) vs {html.escape(summary['dG_reference'])}</th><th>dG 95% interval</th></tr>{rows}</table>
 {"".join(f"<p>{html.escape(k)}: {v['mean']:.2f} (95% {v['ci95_low']:.2f} - {v['ci95_high']:.2f})</p>"
@@ -444,7 +588,7 @@ flow acceptance {"-" if acceptance is None else f"{100 * acceptance:.1f}%"}.</p>
 <p><img id="torsion-plot" alt="torsion free energies" src="data:image/png;base64,{_torsion_plot(summary)}"></p>
 <h2>Running estimates</h2>
 <p><img id="running-plot" alt="running populations" src="data:image/png;base64,{_running_plot(summary)}"></p>
-<p>Populations are properties of the force field and solvent model; an unconverged run
+{_acceptance_section(summary)}<p>Populations are properties of the force field and solvent model; an unconverged run
 misleads; results inform research and do not replace experiment.</p>
 </body></html>
 """

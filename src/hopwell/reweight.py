@@ -2,9 +2,12 @@
 
 Each stored sample x_i, drawn at temperature T from energy U, gets the importance weight
 w_i = exp(-U'(x_i)/kT' + U(x_i)/kT) for the new state (U', T'). Populations are
-self-normalised weighted fractions; intervals come from the iid bootstrap of the chain
-thinned by its statistical inefficiency (every ceil(g)-th sample of each walker), so that the
-resampled samples are close to independent.
+self-normalised weighted fractions p_k = sum_i w_i [s_i = k] / sum_i w_i over every production
+sample. Their intervals come from the circular moving-block bootstrap within each walker
+(Kuensch 1989, Ann. Stat. 17:1217; Politis & Romano 1992), resampling (state, weight) pairs
+in blocks of ceil(BLOCK_FACTOR g), where g is the largest statistical inefficiency over states
+of the linearised ratio estimator's series w_i ([s_i = k] - p_k) (the delta method for a ratio
+of means): it carries the correlation of the weights as well as of the states.
 """
 
 from __future__ import annotations
@@ -60,23 +63,69 @@ def hamiltonian_log_weights(store: RunStore, overrides: dict, temperature_K: flo
     return -(new_kj - energy_kj) / kT_kj(temperature_K)
 
 
+def _influence_inefficiency(states: np.ndarray, weights: np.ndarray, populations: np.ndarray) -> float:
+    """Largest over states of the walker-averaged inefficiency of w_i ([s_i = k] - p_k).
+
+    ``states`` and ``weights`` have shape ``(n_walkers, n_samples)``; constant series (a state
+    never seen) count as g = 1. One state and one walker at a time, to keep memory flat.
+    """
+    return max(float(np.mean([stats.statistical_inefficiency(w * ((s == k) - p_k))
+                              for s, w in zip(states, weights)]))
+               for k, p_k in enumerate(populations))
+
+
 def reweighted_populations(series: np.ndarray, log_w_series: np.ndarray, n_states: int,
-                           inefficiency: float, rng: np.random.Generator, n_boot: int = 1000):
-    """Weighted populations from per-walker series, shape ``(n_walkers, n_samples)`` each.
+                           rng: np.random.Generator, n_boot: int = 1000,
+                           confidence: float = 0.95) -> stats.PopulationResult:
+    """Self-normalised weighted populations with block-bootstrap intervals.
+
+    Parameters
+    ----------
+    series : numpy.ndarray of int, shape ``(n_walkers, n_samples)``
+        State index of each production sample, in time order within each walker.
+    log_w_series : numpy.ndarray, shape ``(n_walkers, n_samples)``
+        Log importance weight of each sample (up to a constant); -inf is weight zero.
+    n_states : int
+    rng : numpy.random.Generator
+    n_boot : int
+    confidence : float
+
+    Returns
+    -------
+    hopwell.stats.PopulationResult
+        ``statistical_inefficiency`` is g of the weighted series (see the module docstring),
+        ``block_length`` the bootstrap block, ``ess`` Kish's effective sample size over g.
 
     Raises
     ------
+    ValueError
+        When the arrays differ in shape or are not 2-D, or a log weight is nan or +inf.
     InputError
-        When Kish's effective sample size of the thinned, weighted sample is below
-        ``MIN_REWEIGHT_ESS``: the new state overlaps too little with the sampled one.
+        When the effective sample size is below ``MIN_REWEIGHT_ESS``: the new state overlaps
+        too little with the sampled one.
     """
-    step = max(1, math.ceil(inefficiency))
-    states = series[:, ::step].ravel()
-    log_w = log_w_series[:, ::step].ravel()
-    ess = stats.kish_ess(log_w)
+    states = np.asarray(series)
+    log_w = np.asarray(log_w_series, dtype=float)
+    if states.ndim != 2 or states.shape != log_w.shape:
+        raise ValueError(f"series and log_w_series must be 2-D of one shape; got {states.shape}"
+                         f" and {log_w.shape}")
+    if np.any(np.isnan(log_w) | (log_w == np.inf)) or not np.any(np.isfinite(log_w)):
+        raise ValueError("log_w_series must hold no nan or +inf and at least one finite value")
+    weights = np.exp(log_w - log_w.max())
+    populations = np.bincount(states.ravel(), weights.ravel(), minlength=n_states) / weights.sum()
+    g = _influence_inefficiency(states, weights, populations)
+    ess = stats.kish_ess(log_w.ravel()) / g
     if ess < MIN_REWEIGHT_ESS:
         raise InputError(
             f"reweighting refused: effective sample size {ess:.0f} < {MIN_REWEIGHT_ESS}"
             " (too little overlap); sample the new conditions directly"
         )
-    return stats.self_normalized_populations(states, log_w, n_states, rng, n_boot=n_boot)
+    block = int(min(math.ceil(stats.BLOCK_FACTOR * g), states.shape[1]))
+    eye = np.eye(n_states)
+    totals = sum(stats.circular_block_counts(w[:, None] * eye[s], block, n_boot, rng)
+                 for s, w in zip(states, weights))
+    replicates = totals / totals.sum(axis=1, keepdims=True)
+    alpha = 1.0 - confidence
+    lower, upper = np.quantile(replicates, [alpha / 2.0, 1.0 - alpha / 2.0], axis=0)
+    return stats.PopulationResult(populations, lower, upper, replicates, confidence,
+                                  int(states.size), g, block, ess)

@@ -38,7 +38,7 @@ import torch
 from rdkit import Chem
 
 from hopwell.atomic import atomic_write_bytes
-from hopwell.darts import build_darts
+from hopwell.darts import build_darts, slow_torsion_rows
 from hopwell.energy import EnergyEvaluator
 from hopwell.guards import ProposalGuard
 from hopwell.internal import build_zmatrix, cartesian_to_internal, internal_to_cartesian
@@ -76,6 +76,9 @@ class SamplerSettings:
     single_moves_per_cycle : int
         One-torsion proposals per walker per cycle, each from the base's marginal of one
         randomly chosen moving torsion (see :meth:`Sampler._single_moves`).
+    flow_torsions : {"rotatable", "all"}
+        Torsions the flow and one-torsion moves redraw: the principal torsions about rotatable
+        bonds (methyl and hydroxyl rotors left to Langevin), or every moving torsion.
     darts_per_cycle : int
         Seed darts per walker per cycle (:mod:`hopwell.darts`): exact jumps between the basins
         of the seed structures.
@@ -107,6 +110,7 @@ class SamplerSettings:
     langevin_steps: int = 250
     proposals_per_cycle: int = 32
     single_moves_per_cycle: int = 16
+    flow_torsions: str = "rotatable"
     darts_per_cycle: int = 4
     training_cycles: int = 200
     training_seconds: float | None = None
@@ -193,12 +197,14 @@ class Sampler:
             rotatable=rotatable_bonds(mol),
         )
         self.guard = ProposalGuard.from_mol(mol, seeds_nm[0])
-        self.moving = moving_torsions(self.zmat, mol)
+        moving = moving_torsions(self.zmat, mol)
+        rotatable = slow_torsion_rows(self.zmat, mol, moving)
+        self.moving = rotatable if settings.flow_torsions == "rotatable" and len(rotatable) else moving
         if len(self.moving) == 0:
             raise ValueError("the molecule has no torsion about an acyclic bond to sample")
         self.darts = None
         if settings.method == "flow" and settings.darts_per_cycle > 0:
-            self.darts = build_darts(self.zmat, mol, self.moving, self.evaluator.minimize(seeds_nm))
+            self.darts = build_darts(self.zmat, mol, moving, self.evaluator.minimize(seeds_nm))
         seeds_ic = cartesian_to_internal(self.zmat, torch.as_tensor(seeds_nm))
         with torch.random.fork_rng():  # the network's initial weights follow settings.seed
             torch.manual_seed(settings.seed)

@@ -192,7 +192,7 @@ def _interval(replicates, confidence):
     return np.quantile(replicates, [alpha / 2.0, 1.0 - alpha / 2.0], axis=0)
 
 
-def _circular_block_counts(onehot, block, n_rep, rng):
+def circular_block_counts(onehot, block, n_rep, rng):
     """State counts of ``n_rep`` circular block resamples of one walker.
 
     Moving-block bootstrap (Künsch 1989, Ann. Stat. 17:1217) with the series
@@ -280,7 +280,7 @@ def population_estimate(states, n_states, rng, n_boot=1000, confidence=0.95,
     counts = np.zeros((n_boot, n_states))
     for j, oh in enumerate(onehots):
         rows = np.nonzero(chosen == j)[0]
-        np.add.at(counts, rows, _circular_block_counts(oh, block, len(rows), rng))
+        np.add.at(counts, rows, circular_block_counts(oh, block, len(rows), rng))
     reps = counts / counts.sum(axis=1, keepdims=True)
     lo, hi = _interval(reps, confidence)
     n = int(lengths.sum())
@@ -307,54 +307,6 @@ def kish_ess(log_weights):
     if not np.any(np.isfinite(lw)):
         raise ValueError("at least one log-weight must be finite")
     return float(np.exp(2.0 * special.logsumexp(lw) - special.logsumexp(2.0 * lw)))
-
-
-def self_normalized_populations(states, log_weights, n_states, rng,
-                                n_boot=1000, confidence=0.95):
-    """Self-normalised importance-sampling populations.
-
-    ``p_k = sum_i w_i [s_i = k] / sum_i w_i``.  Samples from independent
-    proposals are independent, so intervals come from the iid bootstrap of
-    (state, weight) pairs; each replica is normalised in log space.
-
-    Parameters
-    ----------
-    states : array_like of int, shape (n_samples,)
-    log_weights : array_like, shape (n_samples,)
-        Unnormalised log importance weights.
-    n_states : int
-    rng : numpy.random.Generator
-    n_boot : int
-    confidence : float
-
-    Returns
-    -------
-    PopulationResult
-        ``ess`` is Kish's effective sample size, ``block_length`` is 1.
-    """
-    s = np.asarray(states)
-    if s.ndim != 1:
-        raise ValueError("states must be a 1-D array of independent samples")
-    (s,) = _walkers([s], n_states)
-    lw = np.asarray(log_weights, dtype=float)
-    if lw.shape != s.shape:
-        raise ValueError("log_weights must have the same shape as states")
-    ess = kish_ess(lw)
-    _check_boot(rng, n_boot, confidence)
-    onehot = np.eye(n_states)[s]
-    n = len(s)
-    p = np.exp(lw - lw.max()) @ onehot
-    step = max(1, _CHUNK // n)
-    reps = []
-    for start in range(0, n_boot, step):
-        c = rng.multinomial(n, np.full(n, 1.0 / n), size=min(step, n_boot - start))
-        top = np.where(c > 0, lw, -np.inf).max(axis=1, keepdims=True)
-        w = c * np.exp(np.where(c > 0, lw - top, -np.inf))
-        reps.append(w @ onehot)
-    reps = np.concatenate(reps)
-    reps /= reps.sum(axis=1, keepdims=True)
-    lo, hi = _interval(reps, confidence)
-    return PopulationResult(p / p.sum(), lo, hi, reps, confidence, n, 1.0, 1, ess)
 
 
 def free_energy_differences(result, kT, reference=None):
