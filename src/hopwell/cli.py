@@ -193,8 +193,9 @@ def _sampler_options(fn):
                      help="remd: number of temperatures (geometric ladder)."),
         click.option("--top-temperature", "top_temperature_K", type=float, default=600.0,
                      show_default=True, help="remd: the ladder's highest temperature (K)."),
-        click.option("--local-move", type=click.Choice(["langevin", "ghmc"]), default="langevin",
-                     show_default=True, help="Local move: unadjusted Langevin or exact GHMC."),
+        click.option("--local-move", type=click.Choice(["langevin", "ghmc"]), default=None,
+                     help="Local move: unadjusted Langevin or exact GHMC [default: ghmc for remd,"
+                          " whose exchanges use total energies, else langevin]."),
     ]
     for option in reversed(options):
         fn = option(fn)
@@ -251,6 +252,9 @@ def _progress_printer(budget):
 
     def describe(sampler):
         phase = "production" if sampler.production else "training"
+        if "exchange" in sampler.stats:
+            return (f"cycle {sampler.cycle}: exchanges {sampler.stats['exchange'].recent_acceptance():.2f}"
+                    f" accepted; {sampler.production_samples} samples")
         darts = f", darts {sampler.stats['dart'].acceptance():.2f}" if sampler.stats["dart"].proposed else ""
         return (f"{phase} cycle {sampler.cycle}: one-torsion {sampler.stats['single'].acceptance():.2f},"
                 f" flow {sampler.stats[phase].recent_acceptance():.2f}{darts} accepted;"
@@ -321,6 +325,7 @@ def run(run_dir, hours, samples, temperature_K, walkers, training_cycles, langev
     from hopwell.systems.builder import BuildOptions
 
     budget = _budget(hours, samples)
+    local_move = local_move or ("ghmc" if method == "remd" else "langevin")
     if method in ("md", "remd"):  # no flow to train: every cycle is production
         training_cycles, hours_share = 0, None
     else:
@@ -434,6 +439,9 @@ def status(run_dir, as_json):
         "flow_acceptance_training": rate("training"),
         "flow_acceptance_production": rate("production"),
         "one_torsion_acceptance": rate("single"),
+        "dart_acceptance": rate("dart") if "dart" in stats else None,
+        "exchange_acceptance": (sum(stats["exchange"]["accepted"]) / sum(stats["exchange"]["attempted"])
+                                if "exchange" in stats and sum(stats["exchange"]["attempted"]) else None),
         "budget": store.config().get("budget", {}),
     }
     if as_json:

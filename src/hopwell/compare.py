@@ -121,13 +121,16 @@ def _run_one(job: dict) -> str:
 
 def plan_runs(input_spec: str, out_dir: Path, methods, repeats: int, budget_s: float, build_options,
               settings) -> list[dict]:
-    """One job per (method, repeat): run directory, settings with the repeat's seed."""
+    """One job per (repeat, method): run directory, settings with the repeat's seed."""
     jobs = []
-    for method in methods:
-        for repeat in range(repeats):
+    for repeat in range(repeats):  # methods interleaved, so that they share the machine's load alike
+        for method in methods:
             flow = method == "flow"
             job_settings = replace(
                 settings, method=method, seed=settings.seed + repeat,
+                # Exchanges use total energies, so replica exchange gets the exact local move
+                # (1 fs Langevin biased its populations on the four-atom chain; DEVELOPERS.md).
+                local_move="ghmc" if method == "remd" else settings.local_move,
                 training_cycles=10**9 if flow else 0,
                 training_seconds=TRAINING_SHARE * budget_s if flow else None,
             )

@@ -532,9 +532,15 @@ def move_acceptance(store: RunStore) -> dict:
     saved = json.loads(str(state["stats"])) if state is not None else {}
     names = {"training": "flow_training", "production": "flow_production", "single": "one_torsion",
              "dart": "dart"}
-    return {label: (saved[key]["accepted"] / saved[key]["proposed"]
-                    if key in saved and saved[key]["proposed"] else None)
-            for key, label in names.items()}
+    out = {label: (saved[key]["accepted"] / saved[key]["proposed"]
+                   if key in saved and saved[key]["proposed"] else None)
+           for key, label in names.items()}
+    exchange = saved.get("exchange")
+    if exchange:  # replica exchange: per neighbour pair of the ladder
+        out["exchange"] = sum(exchange["accepted"]) / max(1, sum(exchange["attempted"]))
+        out["exchange_per_pair"] = [a / t if t else None for a, t in zip(exchange["accepted"], exchange["attempted"])]
+        out["ladder_K"] = exchange["temperatures_K"]
+    return out
 
 
 def _acceptance_section(summary: dict) -> str:
@@ -573,7 +579,8 @@ td:first-child,th:first-child{{text-align:left}}.verdict{{color:{colour};font-si
 <p>{summary['temperature_K']:.1f} K; {summary['samples']} production samples from {summary['walkers']}
 walker(s); effective samples {summary['effective_samples']:.0f}; {summary['transitions']} transitions;
 flow acceptance {"-" if acceptance is None else f"{100 * acceptance:.1f}%"}; over the whole run:
-{", ".join(f"{k.replace('_', ' ')} {100 * v:.1f}%" for k, v in summary["move_acceptance"].items() if v is not None) or "-"}.</p>
+{", ".join(f"{k.replace('_', ' ')} {100 * v:.1f}%" for k, v in summary["move_acceptance"].items()
+           if isinstance(v, float)) or "-"}.</p>
 <table id="populations"><tr><th>state</th><th>population (%)</th><th>95% interval (%)</th>
 <th>dG (kJ/mol) vs {html.escape(summary['dG_reference'])}</th><th>dG 95% interval</th></tr>{rows}</table>
 {"".join(f"<p>{html.escape(k)}: {v['mean']:.2f} (95% {v['ci95_low']:.2f} - {v['ci95_high']:.2f})</p>"

@@ -12,6 +12,7 @@ from openmm import app
 from rdkit import Chem
 
 from hopwell.errors import InputError
+from hopwell.replica import ReplicaSampler
 from hopwell.sampler import Budget, Sampler, SamplerSettings
 from hopwell.store import RunStore
 from hopwell.systems.builder import BuildOptions, MolecularSystem, build, conformer_positions_nm
@@ -40,18 +41,43 @@ def _topology_pdb(molsys: MolecularSystem) -> bytes:
     return out.getvalue().encode()
 
 
+def make_sampler(mol: Chem.Mol, system: openmm.System, seeds_nm: np.ndarray, settings: SamplerSettings,
+                 store: RunStore, n_walkers: int, platform: str | None) -> Sampler:
+    """The sampler ``settings.method`` names: replica exchange ("remd") or walkers ("flow", "md").
+
+    For "remd" the walkers are the ladder's rungs, ``settings.replicas`` of them, and
+    ``n_walkers`` must equal that number.
+    """
+    if settings.method == "remd":
+        if n_walkers != settings.replicas:
+            raise ValueError(f"remd runs one walker per rung: n_walkers must be {settings.replicas}"
+                             f" (settings.replicas), got {n_walkers}")
+        return ReplicaSampler(mol, system, seeds_nm, settings, store, platform=platform)
+    return Sampler(mol, system, seeds_nm, settings, store, n_walkers=n_walkers, platform=platform)
+
+
+def _walkers(settings: SamplerSettings, n_walkers: int | None, n_seeds: int) -> int:
+    """Walkers of a new run: one per rung for "remd", else ``n_walkers`` or one per seed."""
+    if n_walkers is not None and n_walkers < 1:
+        raise InputError(f"--walkers must be at least 1, got {n_walkers}")
+    if settings.method != "remd":
+        return n_walkers or n_seeds
+    if n_walkers is not None:
+        raise InputError("remd runs one walker per temperature; set --replicas, not --walkers")
+    return settings.replicas
+
+
 def start_run(spec: str, out_dir: Path, build_options: BuildOptions, settings: SamplerSettings,
               budget: Budget, n_walkers: int | None = None, platform: str | None = None,
               progress=None, stop_when=None) -> Sampler:
     """Build the system, create the run directory and sample until the budget is spent."""
     molsys = build(spec, build_options)
-    if n_walkers is not None and n_walkers < 1:
-        raise InputError(f"--walkers must be at least 1, got {n_walkers}")
+    walkers = _walkers(settings, n_walkers, len(molsys.seeds_nm))
     config = {
         "input": spec,
         "build": {k: v for k, v in asdict(build_options).items()},
         "sampler": asdict(settings),
-        "walkers": n_walkers or len(molsys.seeds_nm),
+        "walkers": walkers,
         "platform": platform or "",
         "kind": molsys.kind,
         "budget": {"samples": budget.samples, "seconds": budget.seconds},
@@ -62,8 +88,7 @@ def start_run(spec: str, out_dir: Path, build_options: BuildOptions, settings: S
         "system.xml": molsys.to_xml().encode(),
     })
     store.log(f"run started: {molsys.summary()['formula']}, {config['walkers']} walkers")
-    sampler = Sampler(molsys.mol, molsys.system, molsys.seeds_nm, settings, store,
-                      n_walkers=config["walkers"], platform=platform)
+    sampler = make_sampler(molsys.mol, molsys.system, molsys.seeds_nm, settings, store, walkers, platform)
     sampler.run(budget, progress, stop_when)
     return sampler
 
@@ -86,8 +111,8 @@ def load_sampler(run_dir: Path) -> Sampler:
     mol = records[0]
     seeds_nm = np.stack([conformer_positions_nm(m)[0] for m in records])
     system = openmm.XmlSerializer.deserialize(store.read_text("system.xml"))
-    sampler = Sampler(mol, system, seeds_nm, settings, store, n_walkers=config["walkers"],
-                      platform=config.get("platform") or None)
+    sampler = make_sampler(mol, system, seeds_nm, settings, store, config["walkers"],
+                           config.get("platform") or None)
     if state is None:
         store.discard_chunks_from(0)  # only temp files of the interrupted start can be there
         store.log("resume: no checkpoint yet (the start was interrupted); starting from cycle 0")
