@@ -83,6 +83,17 @@ def test_compare_cli_end_to_end(tmp_path):
     assert (out / "comparison.png").stat().st_size > 1000
     assert "reference gauche: 30.00%" in result.output
 
+    # Without a reference: every state on its own, with the runs' interval widths.
+    from hopwell.compare import compare_runs
+
+    jobs = [{"dir": r["dir"], "method": r["method"], "repeat": r["repeat"]} for r in comparison["runs"]]
+    plain = compare_runs(jobs, comparison["budget_s"], None, 0.01, states)
+    assert [g["label"] for g in plain["groups"]] == ["anti", "gauche", "other"]
+    for row in plain["methods"]:
+        assert "time_to_tolerance_s" not in row
+        if row["group"] != "other":
+            assert row["ci95_width_mean"] is not None and 0 <= row["ci95_width_mean"] < 1
+
 
 @pytest.mark.parametrize("args, message", [
     (["--methods", "flow,mc"], "unknown method"),

@@ -42,7 +42,8 @@ from hopwell.store import RunStore
 
 METHODS = ("flow", "md", "remd")
 TIME_POINTS = 24  # points of the running estimates over the budget
-TRAINING_SHARE = 0.3  # as `hopwell run --hours`: the flow trains for this share of the budget
+TRAINING_SHARE = 0.3
+ERROR_FLOOR_POINTS = 0.01  # errors are drawn on a log axis, clipped below at this  # as `hopwell run --hours`: the flow trains for this share of the budget
 
 
 @dataclass(frozen=True)
@@ -266,6 +267,9 @@ def _method_table(runs: list[dict], groups, times: np.ndarray, tolerance: float)
                    "population_mean": float(finals.mean()) if len(finals) else None,
                    "population_spread": float(finals.std(ddof=1)) if len(finals) > 1 else None,
                    "effective_samples_per_s": float(np.mean([r["effective_samples_per_s"] for r in mine])) if mine else None}
+            widths = [r["final"][label]["ci95"][1] - r["final"][label]["ci95"][0]
+                      for r in mine if r["final"][label]["ci95"] is not None]
+            row["ci95_width_mean"] = float(np.mean(widths)) if widths else None
             if ref is not None:
                 errors = [np.abs(np.nan_to_num(np.array(r["running"][label]), nan=1.0) - ref.population) for r in mine]
                 reached = [time_to_tolerance(times, e, tolerance) for e in errors]
@@ -280,14 +284,15 @@ def _method_table(runs: list[dict], groups, times: np.ndarray, tolerance: float)
 def format_table(comparison: dict) -> str:
     """The per-method table as text."""
     tol = 100 * comparison["tolerance"]
-    lines = [f"{'method':<6} {'state':<22} {'population':>18} {'ESS/s':>8}"
+    lines = [f"{'method':<6} {'state':<22} {'population':>18} {'95% width':>9} {'ESS/s':>8}"
              + (f" {'error':>7} {'time to ' + format(tol, 'g') + ' pt':>16}" if comparison["groups"][0]["reference"] else "")]
     for row in comparison["methods"]:
         pop = "n/a" if row["population_mean"] is None else f"{100 * row['population_mean']:.2f}%"
         if row["population_spread"] is not None:
             pop += f" +- {100 * row['population_spread']:.2f}"
         ess = "n/a" if row["effective_samples_per_s"] is None else f"{row['effective_samples_per_s']:.2f}"
-        line = f"{row['method']:<6} {row['group'][:22]:<22} {pop:>18} {ess:>8}"
+        width = "n/a" if row["ci95_width_mean"] is None else f"{100 * row['ci95_width_mean']:.2f}"
+        line = f"{row['method']:<6} {row['group'][:22]:<22} {pop:>18} {width:>9} {ess:>8}"
         if "time_to_tolerance_s" in row:
             err = "n/a" if row["final_error_mean"] is None else f"{100 * row['final_error_mean']:.2f}"
             reached = [t for t in row["time_to_tolerance_s"] if t is not None]
@@ -313,8 +318,8 @@ def write_outputs(out_dir: Path, comparison: dict) -> list[Path]:
     atomic_write_bytes(paths[0], (json.dumps(comparison, indent=2) + "\n").encode())
     text = io.StringIO()
     writer = csv.writer(text)
-    keys = ["method", "group", "repeats", "population_mean", "population_spread", "effective_samples_per_s",
-            "final_error_mean", "reached"]
+    keys = ["method", "group", "repeats", "population_mean", "population_spread", "ci95_width_mean",
+            "effective_samples_per_s", "final_error_mean", "reached"]
     writer.writerow(keys)
     for row in comparison["methods"]:
         writer.writerow([row.get(k) for k in keys])
@@ -341,12 +346,13 @@ def _plot(comparison: dict) -> bytes:
             if run["running"] is None:
                 continue
             values = 100 * np.array(run["running"][group["label"]])
-            y = np.abs(values - 100 * ref["population"]) if ref else values
+            y = np.maximum(np.abs(values - 100 * ref["population"]), ERROR_FLOOR_POINTS) if ref else values
             ax.plot(times_min, y, color=colours.get(run["method"], "k"), alpha=0.8,
                     label=run["method"] if run["repeat"] == 0 else None)
         if ref:
             ax.axhline(100 * comparison["tolerance"], color="grey", ls="--", lw=1)
-            ax.set_yscale("symlog", linthresh=0.1)
+            ax.set_yscale("log")
+            ax.set_ylim(bottom=ERROR_FLOOR_POINTS)
         ax.set_title(group["label"][:40], fontsize=9)
         ax.set_xlabel("sampling time (min)")
         ax.set_ylabel("error (points)" if ref else "population (%)")
