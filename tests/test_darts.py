@@ -37,12 +37,12 @@ def test_reverse_dart_returns_to_the_start():
     mol = molsys.mol
     zmat = build_zmatrix(mol.GetNumAtoms(), [(b.GetBeginAtomIdx(), b.GetEndAtomIdx()) for b in mol.GetBonds()],
                          heavy=[a.GetAtomicNum() > 1 for a in mol.GetAtoms()], rotatable=rotatable_bonds(mol))
-    darts = build_darts(zmat, mol, moving_torsions(zmat, mol), molsys.seeds_nm)
+    darts = build_darts(zmat, moving_torsions(zmat, mol), molsys.seeds_nm)
     assert darts is not None and darts.n_centres >= 2
-    assert len(darts.slow_rows) == 2  # pentane's two C-C-C-C torsions; methyl rotors excluded
+    assert len(darts.rows) == 2  # pentane's two C-C-C-C torsions; methyl rotors excluded
     # Regions do not overlap: the radius is at most half the closest pair of centres.
-    slow = darts.torsions_rad[:, darts.slow_rows]
-    closest = min(torsion_distance(slow[i], slow[j]) for i in range(len(slow)) for j in range(i))
+    rotatable = darts.torsions_rad[:, darts.rows]
+    closest = min(torsion_distance(rotatable[i], rotatable[j]) for i in range(len(rotatable)) for j in range(i))
     assert darts.radius_rad <= 0.5 * closest + 1e-12
     start = cartesian_to_internal(zmat, torch.as_tensor(molsys.seeds_nm[:1]))
     source = int(darts.region(start.torsions_rad.numpy())[0])

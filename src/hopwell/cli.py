@@ -484,7 +484,7 @@ def compare(out_dir, budget_min, repeats, methods, reference_file, states_file, 
     from hopwell.sampler import SamplerSettings
     from hopwell.systems.builder import BuildOptions, build
 
-    chosen = [m.strip() for m in methods.split(",") if m.strip()]
+    chosen = list(dict.fromkeys(m.strip() for m in methods.split(",") if m.strip()))
     unknown = [m for m in chosen if m not in cmp.METHODS]
     if unknown or not chosen:
         raise InputError(f"unknown method(s) {', '.join(unknown) or '(none)'}; use {','.join(cmp.METHODS)}")

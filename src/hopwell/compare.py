@@ -42,8 +42,8 @@ from hopwell.store import RunStore
 
 METHODS = ("flow", "md", "remd")
 TIME_POINTS = 24  # points of the running estimates over the budget
-TRAINING_SHARE = 0.3
-ERROR_FLOOR_POINTS = 0.01  # errors are drawn on a log axis, clipped below at this  # as `hopwell run --hours`: the flow trains for this share of the budget
+TRAINING_SHARE = 0.3  # as `hopwell run --hours`: the flow trains for this share of the budget
+ERROR_FLOOR_POINTS = 0.01  # errors are drawn on a log axis, clipped below at this
 
 
 @dataclass(frozen=True)
@@ -230,8 +230,9 @@ def compare_runs(jobs: list[dict], budget_s: float, references: list[Reference] 
             runs.append(record | {"running": None, "final": None})
             continue
         running = running_populations(model.assign(dihedrals), time_s, len(names), times)
-        record["running"] = {label: running[:, idx].sum(axis=1).tolist() for label, idx, _ in groups}
-        summary = analyse(run_dir, n_boot=500, states_file=states_file)
+        record["running"] = {label: [None if np.isnan(v) else float(v) for v in running[:, idx].sum(axis=1)]
+                             for label, idx, _ in groups}  # None (valid JSON) before the first sample
+        summary = analyse(run_dir, n_boot=500, model=model)
         record["verdict"] = summary["verdict"]
         record["effective_samples_per_s"] = summary["effective_samples"] / budget_s
         record["final"] = _final_groups(summary, groups, names, running[-1])
@@ -262,7 +263,7 @@ def _method_table(runs: list[dict], groups, times: np.ndarray, tolerance: float)
     for method in dict.fromkeys(r["method"] for r in runs):
         mine = [r for r in runs if r["method"] == method and r["running"] is not None]
         for label, _, ref in groups:
-            finals = np.array([r["running"][label][-1] for r in mine])
+            finals = np.array([r["running"][label][-1] for r in mine], dtype=float)
             row = {"method": method, "group": label, "repeats": len(mine),
                    "population_mean": float(finals.mean()) if len(finals) else None,
                    "population_spread": float(finals.std(ddof=1)) if len(finals) > 1 else None,
@@ -271,7 +272,9 @@ def _method_table(runs: list[dict], groups, times: np.ndarray, tolerance: float)
                       for r in mine if r["final"][label]["ci95"] is not None]
             row["ci95_width_mean"] = float(np.mean(widths)) if widths else None
             if ref is not None:
-                errors = [np.abs(np.nan_to_num(np.array(r["running"][label]), nan=1.0) - ref.population) for r in mine]
+                # No sample yet counts as an infinite error, never as within tolerance.
+                errors = [np.nan_to_num(np.abs(np.array(r["running"][label], dtype=float) - ref.population), nan=np.inf)
+                          for r in mine]
                 reached = [time_to_tolerance(times, e, tolerance) for e in errors]
                 row["final_error_mean"] = float(np.mean([e[-1] for e in errors])) if errors else None
                 row["time_to_tolerance_s"] = reached
@@ -345,7 +348,7 @@ def _plot(comparison: dict) -> bytes:
         for run in comparison["runs"]:
             if run["running"] is None:
                 continue
-            values = 100 * np.array(run["running"][group["label"]])
+            values = 100 * np.array(run["running"][group["label"]], dtype=float)
             y = np.maximum(np.abs(values - 100 * ref["population"]), ERROR_FLOOR_POINTS) if ref else values
             ax.plot(times_min, y, color=colours.get(run["method"], "k"), alpha=0.8,
                     label=run["method"] if run["repeat"] == 0 else None)

@@ -2,7 +2,7 @@
 
 Smart darting Monte Carlo (Andricioaei, Straub & Voter 2001, J. Chem. Phys. 114, 6994), here in
 internal coordinates. Each seed, minimized, is a dart centre ``c_k`` (bonds, angles, torsions).
-Around each centre lies a region: the states whose slow torsions (principal torsions about
+Around each centre lies a region: the states whose rotatable torsions (principal torsions about
 rotatable bonds) are within ``radius`` of the centre's, in the Euclidean norm of the wrapped
 differences. The radius is at most half the smallest distance between centres, so regions never
 overlap. A dart from a state ``q`` in region ``i`` picks another centre ``j`` uniformly and
@@ -27,10 +27,8 @@ from dataclasses import dataclass
 
 import numpy as np
 import torch
-from rdkit import Chem
 
 from hopwell.internal import InternalCoords, ZMatrix, cartesian_to_internal
-from hopwell.systems.builder import rotatable_bonds
 
 MIN_SEPARATION_RAD = np.radians(60.0)  # centres closer than this to a kept one are dropped
 MAX_RADIUS_RAD = np.radians(90.0)
@@ -46,19 +44,17 @@ def torsion_distance(a_rad: np.ndarray, b_rad: np.ndarray) -> np.ndarray:
     return np.sqrt(np.sum(wrapped(np.asarray(a_rad) - np.asarray(b_rad)) ** 2, axis=-1))
 
 
-def slow_torsion_rows(zmat: ZMatrix, mol: Chem.Mol, moving: np.ndarray) -> np.ndarray:
+def rotatable_rows(zmat: ZMatrix, moving: np.ndarray) -> np.ndarray:
     """The moving torsion rows whose axis is a rotatable bond (no methyl or hydroxyl rotors)."""
-    rotatable = set(rotatable_bonds(mol))
-    rows = [int(k) for k in moving
-            if tuple(sorted((int(zmat.bond_ref[k + 3]), int(zmat.angle_ref[k + 3])))) in rotatable]
-    return np.array(rows, dtype=int)
+    moving = np.asarray(moving, dtype=int)
+    return moving[zmat.rotatable_mask[moving]]
 
 
-def distinct_centres(slow_rad: np.ndarray, min_separation_rad: float = MIN_SEPARATION_RAD) -> np.ndarray:
+def distinct_centres(rotatable_rad: np.ndarray, min_separation_rad: float = MIN_SEPARATION_RAD) -> np.ndarray:
     """Indices of centres kept in order, each at least ``min_separation_rad`` from those kept."""
     kept: list[int] = []
-    for k in range(len(slow_rad)):
-        if all(torsion_distance(slow_rad[k], slow_rad[j]) >= min_separation_rad for j in kept):
+    for k in range(len(rotatable_rad)):
+        if all(torsion_distance(rotatable_rad[k], rotatable_rad[j]) >= min_separation_rad for j in kept):
             kept.append(k)
     return np.array(kept, dtype=int)
 
@@ -71,7 +67,7 @@ class Darts:
     ----------
     bonds_nm, angles_rad, torsions_rad : numpy.ndarray, shapes ``(K, n_atoms - 1)`` etc.
         The centres' internal coordinates (:class:`hopwell.internal.InternalCoords` layout).
-    slow_rows : numpy.ndarray of int
+    rows : numpy.ndarray of int
         Torsion rows that define the regions.
     radius_rad : float
     """
@@ -79,7 +75,7 @@ class Darts:
     bonds_nm: np.ndarray
     angles_rad: np.ndarray
     torsions_rad: np.ndarray
-    slow_rows: np.ndarray
+    rows: np.ndarray
     radius_rad: float
 
     @property
@@ -88,8 +84,8 @@ class Darts:
 
     def region(self, torsions_rad: np.ndarray) -> np.ndarray:
         """Region index of each state (``-1`` outside all), from torsions ``(n, n_atoms - 3)``."""
-        slow = np.asarray(torsions_rad)[:, None, self.slow_rows]
-        distance = torsion_distance(slow, self.torsions_rad[None, :, self.slow_rows])
+        rotatable = np.asarray(torsions_rad)[:, None, self.rows]
+        distance = torsion_distance(rotatable, self.torsions_rad[None, :, self.rows])
         inside = distance < self.radius_rad
         return np.where(inside.any(axis=1), np.argmax(inside, axis=1), -1)
 
@@ -103,27 +99,26 @@ class Darts:
         return shift(ic.bonds_nm, self.bonds_nm), shift(ic.angles_rad, self.angles_rad), torsions
 
 
-def build_darts(zmat: ZMatrix, mol: Chem.Mol, moving: np.ndarray, centres_nm: np.ndarray) -> Darts | None:
+def build_darts(zmat: ZMatrix, moving: np.ndarray, centres_nm: np.ndarray) -> Darts | None:
     """Darts between the distinct basins of ``centres_nm`` (minimized seeds); None if under two.
 
     Parameters
     ----------
     zmat : ZMatrix
-    mol : rdkit.Chem.Mol
     moving : numpy.ndarray of int
         The sampler's moving torsion rows (:func:`hopwell.moves.moving_torsions`).
     centres_nm : numpy.ndarray, shape ``(n_seeds, n_atoms, 3)``
     """
-    slow_rows = slow_torsion_rows(zmat, mol, moving)
-    if len(slow_rows) == 0 or len(centres_nm) < 2:
+    rows = rotatable_rows(zmat, moving)
+    if len(rows) == 0 or len(centres_nm) < 2:
         return None
     with torch.no_grad():
         ic = cartesian_to_internal(zmat, torch.as_tensor(np.asarray(centres_nm, dtype=float)))
     torsions = ic.torsions_rad.numpy()
-    kept = distinct_centres(torsions[:, slow_rows])
+    kept = distinct_centres(torsions[:, rows])
     if len(kept) < 2:
         return None
-    slow = torsions[kept][:, slow_rows]
-    separation = min(torsion_distance(slow[i], slow[j]) for i in range(len(kept)) for j in range(i))
-    return Darts(ic.bonds_nm.numpy()[kept], ic.angles_rad.numpy()[kept], torsions[kept], slow_rows,
+    rotatable = torsions[kept][:, rows]
+    separation = min(torsion_distance(rotatable[i], rotatable[j]) for i in range(len(kept)) for j in range(i))
+    return Darts(ic.bonds_nm.numpy()[kept], ic.angles_rad.numpy()[kept], torsions[kept], rows,
                  float(min(0.5 * separation, MAX_RADIUS_RAD)))

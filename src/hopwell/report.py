@@ -188,7 +188,7 @@ def _state_model(store: RunStore, mol: Chem.Mol, topology: md.Topology, states_f
 
 
 def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict | None = None,
-            states_file: Path | None = None) -> dict:
+            states_file: Path | None = None, model=None) -> dict:
     """Populations, free energies, diagnostics and the verdict of a run (the summary dict).
 
     Parameters
@@ -202,12 +202,14 @@ def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict
         production samples to (see :mod:`hopwell.reweight`).
     states_file : Path, optional
         A user's states TOML (see :class:`hopwell.states.UserStates`); default automatic states.
+    model : optional
+        A state model to use instead (:mod:`hopwell.states`), e.g. one shared by several runs.
     """
     store = RunStore.open(Path(run_dir))
     config = store.config()
     mol = next(iter(Chem.SDMolSupplier(str(store.path / "molecule.sdf"), removeHs=False)))
     topology = md.load_topology(str(store.path / "topology.pdb"))
-    model, torsions = _state_model(store, mol, topology, states_file)
+    model, torsions = (model, None) if model is not None else _state_model(store, mol, topology, states_file)
     temperature = float(config["sampler"]["temperature_K"])
     kT = kT_kj(temperature)
     production = _gather(store, topology, model.torsions if model else torsions, kT)

@@ -18,6 +18,10 @@ from hopwell.store import RunStore
 from hopwell.systems.builder import BuildOptions, MolecularSystem, build, conformer_positions_nm
 
 
+# Settings that runs made before they existed did without: such a run resumes as it began.
+LEGACY_SETTINGS = {"flow_torsions": "all", "darts_per_cycle": 0}
+
+
 def _molecule_sdf(molsys: MolecularSystem) -> bytes:
     """The molecule with one conformer per seed (Angstrom), as SDF text."""
     mol = Chem.Mol(molsys.mol)
@@ -106,7 +110,8 @@ def load_sampler(run_dir: Path) -> Sampler:
                          " directory is damaged")
     config = store.config()
     names = {f.name for f in fields(SamplerSettings)}
-    settings = SamplerSettings(**{k: v for k, v in config["sampler"].items() if k in names})
+    saved = {**LEGACY_SETTINGS, **config["sampler"]}
+    settings = SamplerSettings(**{k: v for k, v in saved.items() if k in names})
     records = list(Chem.SDMolSupplier(str(store.path / "molecule.sdf"), removeHs=False))
     mol = records[0]
     seeds_nm = np.stack([conformer_positions_nm(m)[0] for m in records])

@@ -38,7 +38,7 @@ import torch
 from rdkit import Chem
 
 from hopwell.atomic import atomic_write_bytes
-from hopwell.darts import build_darts, slow_torsion_rows
+from hopwell.darts import build_darts, rotatable_rows
 from hopwell.energy import EnergyEvaluator
 from hopwell.guards import ProposalGuard
 from hopwell.internal import build_zmatrix, cartesian_to_internal, internal_to_cartesian
@@ -197,14 +197,19 @@ class Sampler:
             rotatable=rotatable_bonds(mol),
         )
         self.guard = ProposalGuard.from_mol(mol, seeds_nm[0])
+        if settings.flow_torsions not in ("rotatable", "all"):
+            raise ValueError(f"flow_torsions must be 'rotatable' or 'all', got {settings.flow_torsions!r}")
         moving = moving_torsions(self.zmat, mol)
-        rotatable = slow_torsion_rows(self.zmat, mol, moving)
+        rotatable = rotatable_rows(self.zmat, moving)
         self.moving = rotatable if settings.flow_torsions == "rotatable" and len(rotatable) else moving
         if len(self.moving) == 0:
             raise ValueError("the molecule has no torsion about an acyclic bond to sample")
+        self._all_moving = moving
+        self.dart_centres_nm = None  # the minimized seeds, kept in the checkpoint
         self.darts = None
         if settings.method == "flow" and settings.darts_per_cycle > 0:
-            self.darts = build_darts(self.zmat, mol, moving, self.evaluator.minimize(seeds_nm))
+            self.dart_centres_nm = self.evaluator.minimize(seeds_nm)
+            self.darts = build_darts(self.zmat, moving, self.dart_centres_nm)
         seeds_ic = cartesian_to_internal(self.zmat, torch.as_tensor(seeds_nm))
         with torch.random.fork_rng():  # the network's initial weights follow settings.seed
             torch.manual_seed(settings.seed)
@@ -368,6 +373,12 @@ class Sampler:
             positions = positions.numpy()
             if self.guard(positions).rejected[0]:
                 continue
+            # q' is in the target region by construction; checked on the coordinates the next
+            # dart will read, so that round-off at a region's edge cannot break reversibility.
+            with torch.no_grad():
+                landed = cartesian_to_internal(self.zmat, torch.as_tensor(positions))
+            if int(self.darts.region(landed.torsions_rad.numpy())[0]) != target:
+                continue
             energy = float(self.evaluator.energies_kj(positions)[0])
             log_alpha = -(energy - self.energies_kj[walker]) / kT + float(log_j[0] - current.log_jacobian[0])
             if np.isfinite(energy) and np.log(self.rng.random()) < log_alpha:
@@ -463,6 +474,7 @@ class Sampler:
             "rng": np.str_(json.dumps(self.rng.bit_generator.state)),
             "torch_rng": self.torch_rng.get_state().numpy(),
             "stats": np.str_(json.dumps(stats)),
+            **({} if self.dart_centres_nm is None else {"dart_centres_nm": self.dart_centres_nm}),
         })
         self.store.prune_flows(keep=flow_path)
 
@@ -491,6 +503,9 @@ class Sampler:
             friction_per_ps=self.settings.friction_per_ps, seed=int(self.rng.integers(1, 2**31 - 1)),
             local_move=self.settings.local_move,
         )
+        if "dart_centres_nm" in state:  # the first start's centres, not a re-minimization
+            self.dart_centres_nm = np.array(state["dart_centres_nm"])
+            self.darts = build_darts(self.zmat, self._all_moving, self.dart_centres_nm)
         for name, values in json.loads(str(state["stats"])).items():
             recent = values.pop("recent")
             self.stats[name] = CycleStats(**values, recent=deque(map(tuple, recent), maxlen=20))

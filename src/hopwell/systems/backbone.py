@@ -76,8 +76,8 @@ def rotate_about_bond(positions_nm: np.ndarray, bonds: list[tuple[int, int]], qu
     """
     i, j, k, l = (int(a) for a in quad)
     side = _side_of(bonds, j, k, len(positions_nm))
-    current = md.compute_dihedrals(md.Trajectory(positions_nm[None].astype(np.float32), None),
-                                   np.array([[i, j, k, l]]))[0, 0]
+    current = float(md.compute_dihedrals(md.Trajectory(positions_nm[None].astype(np.float32), None),
+                                         np.array([[i, j, k, l]]))[0, 0])
     axis = positions_nm[k] - positions_nm[j]
     axis /= np.linalg.norm(axis)
     angle = target_rad - current
@@ -88,6 +88,15 @@ def rotate_about_bond(positions_nm: np.ndarray, bonds: list[tuple[int, int]], qu
     out = positions_nm.copy()
     out[side] = positions_nm[k] + rotated
     return out
+
+
+def _in_ring(bonds: list[tuple[int, int]], j: int, k: int) -> bool:
+    """Whether the bond j-k lies in a ring (k reaches j without it)."""
+    try:
+        _side_of(bonds, int(j), int(k), 1 + max(max(b) for b in bonds))
+    except ValueError:
+        return True
+    return False
 
 
 def _side_of(bonds: list[tuple[int, int]], j: int, k: int, n_atoms: int) -> np.ndarray:
@@ -126,8 +135,11 @@ def backbone_seeds(topology: app.Topology, system: openmm.System,
     regions : list of tuple of str
         The regions of each seed, one name per residue.
     """
-    pairs = backbone_torsions(topology)
     bonds = [(b.atom1.index, b.atom2.index) for b in topology.bonds()]
+    # Residues whose phi or psi turns a ring bond (proline's N-CA, a cyclic backbone) keep
+    # their input torsions: a rigid rotation of one side would tear the ring.
+    pairs = [(phi, psi) for phi, psi in backbone_torsions(topology)
+             if not (_in_ring(bonds, phi[1], phi[2]) or _in_ring(bonds, psi[1], psi[2]))]
     if not pairs:
         return np.asarray(positions_nm), [() for _ in positions_nm]
     quads = np.array([q for pair in pairs for q in pair])
