@@ -251,6 +251,11 @@ def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict
     # The importance estimate normalizes within blocks of a few tens of proposals, which biases
     # it by O(1 / block size); its disagreements are warnings, not reasons (DEVELOPERS.md).
     warnings = []
+    unseen = [model.names[s] for s in range(n_states)
+              if seen_by[s] == 0 and (model.kind == "backbone" or (model.kind == "user" and s < n_states - 1))]
+    if unseen:  # named in advance but never sampled: a missed basin looks just like this
+        warnings.append(f"never visited: {', '.join(unseen)} (their populations are upper bounds only;"
+                        " seed a structure there if one is known)")
     if importance is not None:
         apart = [model.names[s] for s in range(n_states)
                  if importance["ci95"][s][0] > pops.upper[s] or importance["ci95"][s][1] < pops.lower[s]]
