@@ -13,8 +13,10 @@ Each cycle, for each walker:
 
    Proposals flagged by the clash or stereo guard have target density zero: rejected, and
    never sent to OpenMM.
+3. one-torsion redraws from the base's marginals (:meth:`Sampler._single_moves`) and seed darts
+   between the basins of the minimized seeds (:mod:`hopwell.darts`), both exact MH moves.
 
-The chain state is recorded after the Langevin segment and after the proposal block (a fixed
+The chain state is recorded after the Langevin segment and after the other moves (a fixed
 sub-sampling of a stationary chain is stationary). During training the flow is refit every
 few cycles on a bounded buffer of recent walker states (the chain is then adaptive, not
 Markov, so these samples are kept for diagnostics only). Training ends at a set cycle; from then
@@ -210,6 +212,8 @@ class Sampler:
         if settings.method == "flow" and settings.darts_per_cycle > 0:
             self.dart_centres_nm = self.evaluator.minimize(seeds_nm)
             self.darts = build_darts(self.zmat, moving, self.dart_centres_nm)
+        # Production walker states per dart region (index 0: outside every region).
+        self.basin_counts = np.zeros(1 + (self.darts.n_centres if self.darts else 0), dtype=np.int64)
         seeds_ic = cartesian_to_internal(self.zmat, torch.as_tensor(seeds_nm))
         with torch.random.fork_rng():  # the network's initial weights follow settings.seed
             torch.manual_seed(settings.seed)
@@ -353,6 +357,17 @@ class Sampler:
                 self.positions_nm[walker], self.energies_kj[walker] = positions[hits[0]], energy[hits[0]]
             remaining -= used
 
+    def basin_populations(self) -> np.ndarray | None:
+        """Running share of production walker states in each seed's basin (dart region).
+
+        A progress indicator, not an estimate: regions are balls around the minimized seeds,
+        and the share outside all of them comes last. None without darts or samples yet.
+        """
+        total = self.basin_counts.sum()
+        if self.darts is None or total == 0:
+            return None
+        return np.concatenate([self.basin_counts[1:], self.basin_counts[:1]]) / total
+
     def _darts(self, walker: int) -> None:
         """Seed darts (see :mod:`hopwell.darts`); a state outside every region stays put."""
         stats, kT = self.stats["dart"], self.evaluator.kT
@@ -432,6 +447,11 @@ class Sampler:
             self.buffer.extend(ic.torsions_rad[:, self.moving].numpy())
         else:
             self.production_samples += len(states["walker"])
+            if self.darts is not None:  # running occupancy of the seeds' basins, for progress
+                with torch.no_grad():
+                    ic = cartesian_to_internal(self.zmat, torch.as_tensor(self.positions_nm))
+                self.basin_counts += np.bincount(self.darts.region(ic.torsions_rad.numpy()) + 1,
+                                                 minlength=self.darts.n_centres + 1)
         self._pending.append((states, _concat(proposals)))
         self.cycle += 1
         if not production and self.cycle % self.settings.fit_every == 0:
@@ -474,7 +494,8 @@ class Sampler:
             "rng": np.str_(json.dumps(self.rng.bit_generator.state)),
             "torch_rng": self.torch_rng.get_state().numpy(),
             "stats": np.str_(json.dumps(stats)),
-            **({} if self.dart_centres_nm is None else {"dart_centres_nm": self.dart_centres_nm}),
+            **({} if self.dart_centres_nm is None else {"dart_centres_nm": self.dart_centres_nm,
+                                                        "basin_counts": self.basin_counts}),
         })
         self.store.prune_flows(keep=flow_path)
 
@@ -506,6 +527,7 @@ class Sampler:
         if "dart_centres_nm" in state:  # the first start's centres, not a re-minimization
             self.dart_centres_nm = np.array(state["dart_centres_nm"])
             self.darts = build_darts(self.zmat, self._all_moving, self.dart_centres_nm)
+            self.basin_counts = np.array(state["basin_counts"])
         for name, values in json.loads(str(state["stats"])).items():
             recent = values.pop("recent")
             self.stats[name] = CycleStats(**values, recent=deque(map(tuple, recent), maxlen=20))
