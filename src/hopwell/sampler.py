@@ -371,12 +371,12 @@ class Sampler:
     def _darts(self, walker: int) -> None:
         """Seed darts (see :mod:`hopwell.darts`); a state outside every region stays put."""
         stats, kT = self.stats["dart"], self.evaluator.kT
+        with torch.no_grad():
+            current = cartesian_to_internal(self.zmat, torch.as_tensor(self.positions_nm[walker:walker + 1]))
         for _ in range(self.settings.darts_per_cycle):
-            with torch.no_grad():
-                current = cartesian_to_internal(self.zmat, torch.as_tensor(self.positions_nm[walker:walker + 1]))
             source = int(self.darts.region(current.torsions_rad.numpy())[0])
             if source < 0:
-                continue
+                break  # no dart moves a state outside every region: the rest would not either
             target = int(self.rng.integers(0, self.darts.n_centres - 1))
             target += target >= source  # uniform over the other centres
             bonds, angles, torsions = self.darts.displace(current, source, target)
@@ -399,6 +399,7 @@ class Sampler:
             if np.isfinite(energy) and np.log(self.rng.random()) < log_alpha:
                 stats.accepted += 1
                 self.positions_nm[walker], self.energies_kj[walker] = positions[0], energy
+                current = landed  # the new state's coordinates, already computed
 
     def _fit(self) -> None:
         """Refit base and splines on the buffer; undo the refit if the flow diverges."""

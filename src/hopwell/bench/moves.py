@@ -17,6 +17,7 @@ from pathlib import Path
 
 import torch
 
+from hopwell.bench import print_table
 from hopwell.report import analyse
 from hopwell.run import start_run
 from hopwell.sampler import Budget, SamplerSettings
@@ -64,11 +65,7 @@ def main(argv=None) -> None:
     with tempfile.TemporaryDirectory() as tmp:
         for k, name in enumerate(args.variants.split(",")):
             rows[name] = run_variant(args.input, Path(tmp) / f"v{k}", VARIANTS[name], 60.0 * args.minutes)
-    keys = list(next(iter(rows.values())))
-    print(f"{'variant':<14} " + " ".join(f"{k:>14}" for k in keys))
-    for name, row in rows.items():
-        print(f"{name:<14} " + " ".join(f"{v:>14.3f}" if isinstance(v, float) else f"{v!s:>14}"
-                                        for v in row.values()))
+    print_table(rows, "variant", 14, 14, float_format=".3f")
     if args.json_out:
         args.json_out.write_text(json.dumps(rows, indent=2) + "\n")
 

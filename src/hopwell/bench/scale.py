@@ -15,6 +15,8 @@ import resource
 import tempfile
 from pathlib import Path
 
+from hopwell.bench import print_table
+
 # Molecules of about 10, 20, 50 and 100 atoms (the last two made up for this benchmark).
 MOLECULES = {
     "N-methylacetamide": "CC(=O)NC",
@@ -71,11 +73,7 @@ def main(argv=None) -> None:
     for name, spec in MOLECULES.items():
         with context.Pool(1) as pool:  # a fresh process each: peak memory is per molecule
             rows[name] = pool.apply(_child, ((spec, 60.0 * args.minutes, args.solvent),))
-    keys = list(next(iter(rows.values())))
-    print(f"{'molecule':<26} " + " ".join(f"{k:>15}" for k in keys))
-    for name, row in rows.items():
-        print(f"{name:<26} " + " ".join(f"{v:>15.4g}" if isinstance(v, float) else f"{v:>15}"
-                                        for v in row.values()))
+    print_table(rows, "molecule", 26, 15)
     if args.json_out:
         args.json_out.write_text(json.dumps(rows, indent=2) + "\n")
 
