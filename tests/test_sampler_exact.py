@@ -35,6 +35,7 @@ from chain_systems import (
     well_edges_rad,
 )
 from hopwell.guards import ProposalGuard
+from hopwell.internal import cartesian_to_internal
 from hopwell.sampler import Budget, Sampler, SamplerSettings
 from hopwell.stats import population_estimate
 from hopwell.systems.builder import BuildOptions, build
@@ -158,9 +159,13 @@ def test_flow_moves_alone_match_quadrature(tmp_path):
 
     # The populations an independence chain without the q ratio would give, by quadrature of
     # exp(-V/kT) q(phi) over each well; the run must tell them apart from the exact ones.
+    # The flow is untrained (its base alone), so q does not depend on its context (bond
+    # angles); any walker's serve.
+    context = cartesian_to_internal(sampler.zmat, torch.as_tensor(seeds[:1])).angles_rad[0, sampler.context_columns]
+
     def log_q(phi):
         with torch.no_grad():
-            return float(sampler.flow.log_prob(torch.tensor([[phi]], dtype=torch.float64))[0])
+            return float(sampler.flow.log_prob(torch.tensor([[phi]], dtype=torch.float64), context)[0])
 
     edges = well_edges_rad()
     bounds = [(edges[0], edges[1]), (edges[1], edges[2]), (edges[2], edges[0] + 2 * np.pi)]

@@ -1,6 +1,6 @@
 """Torsion-space flow proposals: new principal torsions, everything else kept.
 
-The sampler's non-local move draws all principal torsions about acyclic bonds at once from a
+The sampler's non-local move draws the principal torsions about rotatable bonds at once from a
 normalizing flow q on the torus, and keeps the walker's bonds, angles, ring torsions and
 torsion offsets (so methyl hydrogens and branches turn rigidly with their principal torsion).
 Given the kept coordinates r, this is an independence proposal for the torsions t, and the
@@ -13,6 +13,24 @@ p(t | r) invariant and hence the Boltzmann distribution (a Metropolis-within-Gib
 conformations (bonds and angles too) proposed independently were measured here to give zero
 acceptance for n-butane after 40 training cycles: product densities over stiff coordinates put
 most proposals many kT uphill.
+
+Two choices raise the flow move's acceptance; both were measured offline on 7416 production
+states of Ace-Ala-NMe in vacuum (flows fitted to the first 70% in time, acceptance of 32
+proposals from each of 150 later states):
+
+- Torsions about partial double bonds (amide C-N and the like, :func:`stiff_rows`) are left
+  out of the flow and turned by the one-torsion moves and seed darts only; where a molecule
+  has no other rotatable bond, the flow keeps them. Each amide torsion redrawn alone was
+  accepted 55-59% of the time, and all four rotatable torsions from one flow 19%, against 30%
+  for phi and psi alone: the acceptance of a joint independence proposal falls roughly as the
+  product of its parts'.
+- The flow is conditioned on the bond angles at its torsions' central atoms
+  (:func:`context_angles`; zuko's ``context``): it models p(t | angles), not the marginal p(t).
+  Backbone angles differ between basins; this raised phi-psi acceptance from 30% to 37%. All
+  kept coordinates as context (56 inputs) overfitted (held-out log-likelihood -4.7 against
+  -0.46 unconditional), so the networks see the few angles, with Gaussian noise added to them
+  during training. The angles are the same in x and x', so q(t | angles) enters the ratio
+  exactly as above.
 
 The flow is zuko's neural circular spline flow (circular rational-quadratic splines, Rezende
 et al. 2020; Durkan et al. 2019) with its uniform base replaced by a physics-informed one: a
@@ -71,6 +89,33 @@ def moving_torsions(zmat: ZMatrix, mol: Chem.Mol) -> np.ndarray:
     return np.array(rows, dtype=int)
 
 
+# Bonds with partial double-bond character (amide, thioamide, ester, carbamate, urea): the
+# carbonyl-type carbon's single bond to N or O. Common practice: their rotation barriers
+# (roughly 15-20 kcal/mol for amides, 10-13 for esters; values from memory) make them
+# two-state switches rather than free rotors.
+STIFF_BOND = Chem.MolFromSmarts("[CX3](=[OX1,SX1])-[#7,#8]")
+
+
+def stiff_rows(zmat: ZMatrix, mol: Chem.Mol, rows: np.ndarray) -> np.ndarray:
+    """Which torsion ``rows`` turn about a partial double bond (:data:`STIFF_BOND`), ``(len(rows),)``."""
+    stiff = {frozenset(match[0::2]) for match in mol.GetSubstructMatches(STIFF_BOND)}
+    return np.array([frozenset((int(zmat.bond_ref[k + 3]), int(zmat.angle_ref[k + 3]))) in stiff
+                     for k in rows], dtype=bool)
+
+
+def context_angles(zmat: ZMatrix, rows: np.ndarray) -> np.ndarray:
+    """Bond angles a flow over torsion ``rows`` is conditioned on: those whose vertex is an atom
+    of one of the rows' central bonds (the backbone angle N-CA-C of a peptide, for one).
+
+    Returns
+    -------
+    numpy.ndarray of int
+        Columns of the Z-matrix angle array (column ``j`` is placement row ``j + 2``).
+    """
+    central = {int(a) for k in rows for a in (zmat.bond_ref[k + 3], zmat.angle_ref[k + 3])}
+    return np.array([r - 2 for r in range(2, zmat.n_atoms) if int(zmat.bond_ref[r]) in central], dtype=int)
+
+
 def _seed_cpu(generator: torch.Generator) -> None:
     """Seed torch's global CPU generator (which zuko samples from) from ``generator``.
 
@@ -97,67 +142,119 @@ def _base_parameters(torsions_rad: np.ndarray) -> tuple[torch.Tensor, ...]:
 
 
 class TorsionFlow(torch.nn.Module):
-    """Flow density over ``n_moving`` torsions in ``[-pi, pi)``.
+    """Densities over ``n_moving`` torsions in ``[-pi, pi)``: one-torsion marginals and a flow.
+
+    The base is a von Mises mixture per moving torsion (its marginals serve the one-torsion
+    moves); the flow covers the columns ``flow_columns`` of them, optionally conditioned on
+    ``n_context`` kept coordinates (bond angles, :func:`context_angles`), standardized by the
+    mean and spread of the last :meth:`refit_base` data.
 
     Parameters
     ----------
     torsions_rad : numpy.ndarray, shape ``(n_samples, n_moving)``
         Observed torsions (the seeds) that place the base's mixture components.
+    flow_columns : numpy.ndarray of int, optional
+        The moving torsions the flow redraws (default: all).
+    n_context : int
+        Number of conditioning inputs; 0 for an unconditional flow.
     transforms, hidden, bins : int
         zuko NCSF settings.
     """
 
-    def __init__(self, torsions_rad: np.ndarray, transforms: int = 3, hidden: int = 64, bins: int = 8):
+    def __init__(self, torsions_rad: np.ndarray, flow_columns: np.ndarray | None = None, n_context: int = 0,
+                 transforms: int = 3, hidden: int = 64, bins: int = 8):
         super().__init__()
         torsions_rad = np.atleast_2d(np.asarray(torsions_rad, dtype=float))
         if torsions_rad.shape[1] < 1:
             raise ValueError("a torsion flow needs at least one torsion")
         self.n_moving = torsions_rad.shape[1]
+        columns = np.arange(self.n_moving) if flow_columns is None else np.asarray(flow_columns, dtype=int)
+        if len(columns) < 1:
+            raise ValueError("a torsion flow needs at least one torsion")
+        self.register_buffer("flow_columns", torch.as_tensor(columns), persistent=False)
+        self.register_buffer("other_columns", torch.as_tensor(np.setdiff1d(np.arange(self.n_moving), columns)),
+                             persistent=False)
+        self.n_flow, self.n_context = len(columns), int(n_context)
+        # Mixture parameters of the torsions outside the flow, and the context standardization:
+        # checkpointed only where they exist, so that flows saved without them still load.
+        n_other = len(self.other_columns)
+        loc, kappa, logits = _base_parameters(torsions_rad)
+        for name, value in zip(("other_loc", "other_kappa", "other_logits"), (loc, kappa, logits)):
+            self.register_buffer(name, value[self.other_columns].clone(), persistent=n_other > 0)
+        self.register_buffer("context_center", torch.zeros(self.n_context, dtype=torch.float64),
+                             persistent=self.n_context > 0)
+        self.register_buffer("context_scale", torch.ones(self.n_context, dtype=torch.float64),
+                             persistent=self.n_context > 0)
         # Each zuko circular spline transform shifts the circle by pi before its spline, so an
         # even number of transforms with zeroed output layers is exactly the identity: the
         # untrained flow equals its physics base (measured: held-out log-likelihood -28 for an
         # odd, randomly initialized flow against -5.7 for its base on Ace-Ala-NMe torsions).
         transforms += transforms % 2
         self.flow = zuko.flows.NCSF(
-            features=self.n_moving, transforms=transforms, bins=bins, hidden_features=(hidden, hidden)
+            features=self.n_flow, context=self.n_context, transforms=transforms, bins=bins,
+            hidden_features=(hidden, hidden),
         ).double()
-        self.flow.base = UnconditionalDistribution(_mixture, *_base_parameters(torsions_rad), buffer=True)
+        self.flow.base = UnconditionalDistribution(
+            _mixture, *(a[self.flow_columns] for a in (loc, kappa, logits)), buffer=True)
         self.reset_transforms()
 
     def reset_transforms(self) -> None:
         """Set every spline to the identity (zero the hyper-networks' output layers)."""
         with torch.no_grad():
             for transform in self.flow.transform.transforms:
-                # One feature: zuko keeps the spline parameters themselves (``phi``); more
-                # features: the output layer of the autoregressive hyper-network.
+                # One feature and no context: zuko keeps the spline parameters themselves
+                # (``phi``); otherwise the output layer of the autoregressive hyper-network.
                 params = list(transform.phi) if hasattr(transform, "phi") else [
                     transform.hyper[-1].weight, transform.hyper[-1].bias]
                 for param in params:
                     param.zero_()
 
+    def _context(self, context: torch.Tensor | None, batch: int | None = None) -> torch.Tensor | None:
+        """Standardized network input from raw context ``(..., n_context)``, expanded to
+        ``batch`` rows when one set is shared; None for an unconditional flow."""
+        if self.n_context == 0:
+            return None
+        if context is None:
+            raise ValueError("this flow is conditional: pass its context")
+        z = (torch.as_tensor(context, dtype=torch.float64) - self.context_center) / self.context_scale
+        return z.expand(batch, -1) if batch is not None and z.dim() == 1 else z
+
     def base_log_prob(self, torsions_rad: torch.Tensor) -> torch.Tensor:
-        """log density of the base alone, shape ``(batch,)``."""
+        """log density of the base alone over the flow's torsions, shape ``(batch,)``."""
         t = torch.remainder(torch.as_tensor(torsions_rad, dtype=torch.float64) + np.pi, 2 * np.pi) - np.pi
         return self.flow.base().log_prob(t)
 
-    def refit_base(self, torsions_rad: np.ndarray) -> None:
-        """Move the base mixture onto new observations (training phase only)."""
-        for name, value in zip(("0", "1", "2"), _base_parameters(np.asarray(torsions_rad, dtype=float))):
-            getattr(self.flow.base, f"_{name}").copy_(value)
+    def refit_base(self, torsions_rad: np.ndarray, context: np.ndarray | None = None) -> None:
+        """Move the mixtures onto new observations of all moving torsions ``(n, n_moving)``, and
+        the standardization onto their context ``(n, n_context)`` (training phase only)."""
+        loc, kappa, logits = _base_parameters(np.asarray(torsions_rad, dtype=float))
+        for name, value in zip(("0", "1", "2"), (loc, kappa, logits)):
+            getattr(self.flow.base, f"_{name}").copy_(value[self.flow_columns])
+        for name, value in zip(("other_loc", "other_kappa", "other_logits"), (loc, kappa, logits)):
+            getattr(self, name).copy_(value[self.other_columns])
+        if self.n_context and context is not None:
+            context = torch.as_tensor(context, dtype=torch.float64)
+            self.context_center.copy_(context.mean(0))
+            # A floor keeps a coordinate that has not moved yet from blowing up its input.
+            self.context_scale.copy_(context.std(0, correction=0).clamp_min(1e-4))
 
-    def log_prob(self, torsions_rad: torch.Tensor) -> torch.Tensor:
-        """log q, shape ``(batch,)``, of torsions shape ``(batch, n_moving)`` (wrapped first)."""
+    def log_prob(self, torsions_rad: torch.Tensor, context: torch.Tensor | None = None) -> torch.Tensor:
+        """log q(t | context), shape ``(batch,)``, of the flow's torsions ``(batch, n_flow)``
+        (wrapped first) given ``(batch, n_context)`` or one ``(n_context,)`` for all."""
         t = torch.remainder(torch.as_tensor(torsions_rad, dtype=torch.float64) + np.pi, 2 * np.pi) - np.pi
-        return self.flow().log_prob(t)
+        return self.flow(self._context(context, len(t))).log_prob(t)
 
-    def sample(self, n: int, generator: torch.Generator | None = None) -> tuple[torch.Tensor, torch.Tensor]:
-        """Draw ``n`` torsion vectors and their log q: shapes ``(n, n_moving)``, ``(n,)``."""
+    def sample(self, n: int, context: torch.Tensor | None = None,
+               generator: torch.Generator | None = None) -> tuple[torch.Tensor, torch.Tensor]:
+        """Draw ``n`` vectors of the flow's torsions given one context ``(n_context,)``, with
+        their log q: shapes ``(n, n_flow)``, ``(n,)``."""
         with torch.no_grad():
+            context = self._context(context)
             if generator is not None:
                 state = torch.get_rng_state()
                 _seed_cpu(generator)
             try:
-                t, log_q = self.flow().rsample_and_log_prob((n,))
+                t, log_q = self.flow(context).rsample_and_log_prob((n,))
             finally:
                 if generator is not None:
                     torch.set_rng_state(state)
@@ -165,9 +262,15 @@ class TorsionFlow(torch.nn.Module):
         return t, log_q
 
     def _marginal(self) -> tuple[torch.Tensor, ...]:
-        """The base mixture's (loc, kappa, logits), each ``(n_moving, n_components)``."""
+        """The mixtures' (loc, kappa, logits) of every moving torsion, each ``(n_moving, n_components)``."""
         base = self.flow.base
-        return base._0, base._1, base._2
+        out = []
+        for flow_part, other_part in ((base._0, self.other_loc), (base._1, self.other_kappa),
+                                      (base._2, self.other_logits)):
+            full = torch.empty(self.n_moving, flow_part.shape[1], dtype=torch.float64)
+            full[self.flow_columns], full[self.other_columns] = flow_part, other_part
+            out.append(full)
+        return tuple(out)
 
     def marginal_log_prob(self, index: torch.Tensor, torsions_rad: torch.Tensor) -> torch.Tensor:
         """log of the base's one-torsion marginal q_i(t), for torsions ``index`` (shape ``(n,)``)."""
@@ -191,9 +294,19 @@ class TorsionFlow(torch.nn.Module):
                 torch.set_rng_state(state)
         return torch.remainder(value + np.pi, 2 * np.pi) - np.pi
 
-    def fit_step(self, optimizer: torch.optim.Optimizer, torsions_rad: torch.Tensor) -> float:
-        """One maximum-likelihood step on a batch; returns the mean negative log-likelihood."""
-        loss = -self.log_prob(torsions_rad).mean()
+    def fit_step(self, optimizer: torch.optim.Optimizer, torsions_rad: torch.Tensor,
+                 context: torch.Tensor | None = None, context_noise: float = 0.0,
+                 generator: torch.Generator | None = None) -> float:
+        """One maximum-likelihood step on a batch; returns the mean negative log-likelihood.
+
+        ``context_noise`` adds Gaussian noise of that spread (in standardized units) to the
+        context, a regularizer against fitting the noise of correlated training frames.
+        """
+        t = torch.remainder(torch.as_tensor(torsions_rad, dtype=torch.float64) + np.pi, 2 * np.pi) - np.pi
+        z = self._context(context)
+        if z is not None and context_noise > 0:
+            z = z + context_noise * torch.randn(z.shape, dtype=z.dtype, generator=generator)
+        loss = -self.flow(z).log_prob(t).mean()
         optimizer.zero_grad()
         loss.backward()
         torch.nn.utils.clip_grad_norm_(self.parameters(), 10.0)

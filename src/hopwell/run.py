@@ -19,7 +19,8 @@ from hopwell.systems.builder import BuildOptions, MolecularSystem, build, confor
 
 
 # Settings that runs made before they existed did without: such a run resumes as it began.
-LEGACY_SETTINGS = {"flow_torsions": "all", "darts_per_cycle": 0}
+LEGACY_SETTINGS = {"flow_torsions": "all", "darts_per_cycle": 0, "flow_stiff_torsions": True,
+                   "flow_context": False, "context_noise": 0.0, "weight_decay": 0.0}
 
 
 def _molecule_sdf(molsys: MolecularSystem) -> bytes:

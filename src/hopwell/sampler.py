@@ -44,7 +44,7 @@ from hopwell.darts import build_darts, rotatable_rows
 from hopwell.energy import EnergyEvaluator
 from hopwell.guards import ProposalGuard
 from hopwell.internal import build_zmatrix, cartesian_to_internal, internal_to_cartesian
-from hopwell.moves import TorsionFlow, moving_torsions
+from hopwell.moves import TorsionFlow, context_angles, moving_torsions, stiff_rows
 from hopwell.store import MOVE_FLOW, MOVE_LANGEVIN, STATE_FIELDS, RunStore
 from hopwell.systems.builder import rotatable_bonds
 
@@ -74,13 +74,22 @@ class SamplerSettings:
     langevin_steps : int
         Steps per Langevin segment.
     proposals_per_cycle : int
-        Flow proposals (all moving torsions at once) per walker per cycle.
+        Flow proposals (all the flow's torsions at once) per walker per cycle.
     single_moves_per_cycle : int
         One-torsion proposals per walker per cycle, each from the base's marginal of one
         randomly chosen moving torsion (see :meth:`Sampler._single_moves`).
     flow_torsions : {"rotatable", "all"}
         Torsions the flow and one-torsion moves redraw: the principal torsions about rotatable
         bonds (methyl and hydroxyl rotors left to Langevin), or every moving torsion.
+    flow_stiff_torsions : bool
+        Let the flow also redraw torsions about amide- and ester-like bonds; by default these
+        are left to the one-torsion moves and darts unless the molecule has no other
+        (:mod:`hopwell.moves` gives the measured reason).
+    flow_context : bool
+        Condition the flow on the bond angles at its torsions' central atoms: it then models
+        p(t | angles) rather than the marginal p(t).
+    context_noise : float
+        Spread of the Gaussian noise added to the standardized context while fitting.
     darts_per_cycle : int
         Seed darts per walker per cycle (:mod:`hopwell.darts`): exact jumps between the basins
         of the seed structures.
@@ -89,8 +98,9 @@ class SamplerSettings:
     training_seconds : float or None
         Training also ends once this much sampling time has passed (set from ``--hours``).
     fit_every, fit_steps, fit_batch : int
-        Refit the flow every ``fit_every`` cycles with ``fit_steps`` Adam steps on minibatches.
-    learning_rate : float
+        Refit the flow every ``fit_every`` cycles with ``fit_steps`` AdamW steps on minibatches.
+    learning_rate, weight_decay : float
+        AdamW settings (decoupled weight decay, Loshchilov and Hutter 2019).
     buffer_size : int
         Most recent walker states kept for training (bounds memory).
     buffer_frames_per_segment : int
@@ -113,6 +123,9 @@ class SamplerSettings:
     proposals_per_cycle: int = 32
     single_moves_per_cycle: int = 16
     flow_torsions: str = "rotatable"
+    flow_stiff_torsions: bool = False
+    flow_context: bool = True
+    context_noise: float = 1.0
     darts_per_cycle: int = 4
     training_cycles: int = 200
     training_seconds: float | None = None
@@ -120,10 +133,11 @@ class SamplerSettings:
     fit_steps: int = 40
     fit_batch: int = 256
     learning_rate: float = 2.0e-3
+    weight_decay: float = 1.0e-3
     buffer_size: int = 20000
     buffer_frames_per_segment: int = 5
     cycles_per_chunk: int = 10
-    flow_hidden: int = 64
+    flow_hidden: int = 32
     flow_layers: int = 6
     flow_bins: int = 8
     seed: int = 2024
@@ -214,13 +228,20 @@ class Sampler:
             self.darts = build_darts(self.zmat, moving, self.dart_centres_nm)
         # Production walker states per dart region (index 0: outside every region).
         self.basin_counts = np.zeros(1 + (self.darts.n_centres if self.darts else 0), dtype=np.int64)
+        stiff = stiff_rows(self.zmat, mol, self.moving)
+        # Columns of self.moving the flow redraws; the context: angle columns it is given.
+        self.flow_columns = (np.arange(len(self.moving)) if settings.flow_stiff_torsions or stiff.all()
+                             else np.flatnonzero(~stiff))
+        self.context_columns = (context_angles(self.zmat, self.moving[self.flow_columns])
+                                if settings.flow_context else np.zeros(0, dtype=int))
         seeds_ic = cartesian_to_internal(self.zmat, torch.as_tensor(seeds_nm))
         with torch.random.fork_rng():  # the network's initial weights follow settings.seed
             torch.manual_seed(settings.seed)
-            self.flow = TorsionFlow(seeds_ic.torsions_rad[:, self.moving].numpy(),
-                                    transforms=settings.flow_layers, hidden=settings.flow_hidden,
-                                    bins=settings.flow_bins)
-        self.optimizer = torch.optim.Adam(self.flow.parameters(), lr=settings.learning_rate)
+            self.flow = TorsionFlow(seeds_ic.torsions_rad[:, self.moving].numpy(), self.flow_columns,
+                                    len(self.context_columns), transforms=settings.flow_layers,
+                                    hidden=settings.flow_hidden, bins=settings.flow_bins)
+        self.optimizer = torch.optim.AdamW(self.flow.parameters(), lr=settings.learning_rate,
+                                           weight_decay=settings.weight_decay)
         n_walkers = n_walkers or len(seeds_nm)
         self.positions_nm = np.stack([seeds_nm[k % len(seeds_nm)] for k in range(n_walkers)])
         self.energies_kj = self.evaluator.energies_kj(self.positions_nm)
@@ -271,9 +292,7 @@ class Sampler:
             return
         self.positions_nm[walker], self.energies_kj[walker] = x, e
         if not self.production and pieces > 1:  # intermediate frames: more data for the fit
-            with torch.no_grad():
-                ic = cartesian_to_internal(self.zmat, torch.as_tensor(np.stack(frames[:-1])))
-            self.buffer.extend(ic.torsions_rad[:, self.moving].numpy())
+            self._buffer_add(np.stack(frames[:-1]))
 
     def _propose(self, walker: int) -> dict:
         """One block of flow proposals for one walker; returns the proposal records."""
@@ -281,12 +300,14 @@ class Sampler:
         kT = self.evaluator.kT
         with torch.no_grad():
             current = cartesian_to_internal(self.zmat, torch.as_tensor(self.positions_nm[walker:walker + 1]))
-            t_new, log_q_new = self.flow.sample(k, self.torch_rng)
+            context = current.angles_rad[0, self.context_columns]
+            rows = self.moving[self.flow_columns]
+            t_new, log_q_new = self.flow.sample(k, context, self.torch_rng)
             torsions = current.torsions_rad.repeat(k, 1)
-            torsions[:, self.moving] = t_new
+            torsions[:, rows] = t_new
             pos_new, log_j_new = internal_to_cartesian(
                 self.zmat, current.bonds_nm.repeat(k, 1), current.angles_rad.repeat(k, 1), torsions)
-            log_q_cur = float(self.flow.log_prob(current.torsions_rad[:, self.moving])[0])
+            log_q_cur = float(self.flow.log_prob(current.torsions_rad[:, rows], context)[0])
         pos_new = pos_new.numpy()
         log_q_new, log_j_new = log_q_new.numpy(), log_j_new.numpy()
         mask = self.guard(pos_new)
@@ -401,19 +422,30 @@ class Sampler:
                 self.positions_nm[walker], self.energies_kj[walker] = positions[0], energy
                 current = landed  # the new state's coordinates, already computed
 
+    def _buffer_add(self, positions_nm: np.ndarray) -> None:
+        """Queue states for the flow fit: moving torsions, then the flow's context (float32)."""
+        with torch.no_grad():
+            ic = cartesian_to_internal(self.zmat, torch.as_tensor(positions_nm, dtype=torch.float64))
+        rows = torch.cat([ic.torsions_rad[:, self.moving], ic.angles_rad[:, self.context_columns]], 1)
+        self.buffer.extend(rows.numpy().astype(np.float32))
+
     def _fit(self) -> None:
         """Refit base and splines on the buffer; undo the refit if the flow diverges."""
-        data = torch.as_tensor(np.stack(self.buffer))
+        data = torch.as_tensor(np.stack(self.buffer), dtype=torch.float64)
+        m = len(self.moving)
+        torsions, context = data[:, :m], data[:, m:]
+        flow_t = torsions[:, torch.as_tensor(self.flow_columns)]
         saved = (copy.deepcopy(self.flow.state_dict()), copy.deepcopy(self.optimizer.state_dict()))
-        self.flow.refit_base(data.numpy())
+        self.flow.refit_base(torsions.numpy(), context.numpy())
         loss = float("nan")
         for _ in range(self.settings.fit_steps):
             index = torch.as_tensor(self.rng.integers(0, len(data), self.settings.fit_batch))
-            loss = self.flow.fit_step(self.optimizer, data[index])
+            loss = self.flow.fit_step(self.optimizer, flow_t[index], context[index],
+                                      self.settings.context_noise, self.torch_rng)
         with torch.no_grad():
-            recent = data[-512:]  # the newest states, least seen by the fit
-            check = self.flow.log_prob(recent)
-            base = self.flow.base_log_prob(recent)
+            # the newest states, least seen by the fit
+            check = self.flow.log_prob(flow_t[-512:], context[-512:])
+            base = self.flow.base_log_prob(flow_t[-512:])
         if not (math.isfinite(loss) and torch.isfinite(check).all()):
             self.flow.load_state_dict(saved[0])
             self.optimizer.load_state_dict(saved[1])
@@ -443,9 +475,7 @@ class Sampler:
             self._record_state(states, walker, MOVE_FLOW, production,
                                accepted=block is not None and bool(block["accepted"].any()))
         if not production:
-            with torch.no_grad():
-                ic = cartesian_to_internal(self.zmat, torch.as_tensor(np.stack(states["positions_nm"]), dtype=torch.float64))
-            self.buffer.extend(ic.torsions_rad[:, self.moving].numpy())
+            self._buffer_add(np.stack(states["positions_nm"]))
         else:
             self.production_samples += len(states["walker"])
             if self.darts is not None:  # running occupancy of the seeds' basins, for progress
@@ -536,9 +566,7 @@ class Sampler:
             for chunk in self.store.iter_chunks(upto=self.next_chunk):
                 pos = chunk["state_positions_nm"][~chunk["state_production"].astype(bool)]
                 if len(pos):
-                    with torch.no_grad():
-                        ic = cartesian_to_internal(self.zmat, torch.as_tensor(pos, dtype=torch.float64))
-                    self.buffer.extend(ic.torsions_rad[:, self.moving].numpy())
+                    self._buffer_add(pos)
 
     # -- the loop -------------------------------------------------------------------------
     def request_stop(self, *_args) -> None:

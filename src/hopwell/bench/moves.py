@@ -23,10 +23,13 @@ from hopwell.run import start_run
 from hopwell.sampler import Budget, SamplerSettings
 from hopwell.systems.builder import BuildOptions
 
-# Defaults (flow over rotatable-bond torsions, with darts); flow over every moving torsion;
-# no darts.
+# Defaults (flow over rotatable single-bond torsions given their bond angles, with darts);
+# amide-like torsions in the flow too; an unconditional flow; flow and one-torsion moves over
+# every moving torsion (methyl rotors too); no darts.
 VARIANTS = {
     "default": {},
+    "stiff-in-flow": {"flow_stiff_torsions": True},
+    "no-context": {"flow_context": False},
     "all-torsions": {"flow_torsions": "all"},
     "no-darts": {"darts_per_cycle": 0},
 }

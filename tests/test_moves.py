@@ -1,0 +1,149 @@
+"""The flow move's pieces (hopwell.moves): which torsions the flow redraws, its context, its density.
+
+* Stiff rows are the partial double bonds: amide and ester C-X bonds, not C-C single bonds
+  (common-practice chemistry); on Ace-Ala-NMe the flow's torsions are then exactly mdtraj's
+  phi and psi.
+* The context angles of phi and psi include the backbone angle N-CA-C (mdtraj atom names).
+* A conditional flow is a normalized density for every context (scipy quadrature), its samples
+  carry their own log q, it depends on the context, and its checkpoint restores it exactly.
+"""
+
+from __future__ import annotations
+
+import mdtraj
+import numpy as np
+import pytest
+import torch
+from scipy import integrate
+
+from hopwell.darts import rotatable_rows
+from hopwell.internal import build_zmatrix, cartesian_to_internal
+from hopwell.moves import TorsionFlow, context_angles, moving_torsions, stiff_rows
+from hopwell.systems.builder import BuildOptions, build, rotatable_bonds
+
+torch.set_num_threads(1)
+
+
+def _rows(molsys):
+    mol = molsys.mol
+    zmat = build_zmatrix(mol.GetNumAtoms(), [(b.GetBeginAtomIdx(), b.GetEndAtomIdx()) for b in mol.GetBonds()],
+                         heavy=[a.GetAtomicNum() > 1 for a in mol.GetAtoms()], rotatable=rotatable_bonds(mol))
+    return zmat, rotatable_rows(zmat, moving_torsions(zmat, mol))
+
+
+def _central_bond(zmat, row):
+    return frozenset((int(zmat.bond_ref[row + 3]), int(zmat.angle_ref[row + 3])))
+
+
+@pytest.mark.parametrize("smiles, n_stiff, n_soft", [
+    ("CC(=O)NC", 1, 0),        # N-methylacetamide: the amide C-N only
+    ("CC(=O)OCC", 1, 1),       # ethyl acetate: the ester C(=O)-O, and O-CH2 is a single bond
+    ("CCCCC", 0, 2),           # pentane: two C-C rotors
+    ("CC(=S)NC", 1, 0),        # N-methylthioacetamide
+])
+def test_stiff_rows_are_the_partial_double_bonds(smiles, n_stiff, n_soft):
+    # Common practice: amide, thioamide and ester C(=X)-N/O bonds have partial double-bond
+    # character; ordinary C-C and C-O single bonds do not.
+    molsys = build(smiles, BuildOptions(n_seeds=4))
+    zmat, rows = _rows(molsys)
+    stiff = stiff_rows(zmat, molsys.mol, rows)
+    assert (int(stiff.sum()), int((~stiff).sum())) == (n_stiff, n_soft)
+    for row, is_stiff in zip(rows, stiff):
+        a, b = (molsys.mol.GetAtomWithIdx(i) for i in _central_bond(zmat, row))
+        carbonyl_like = any(n.GetAtomicNum() in (8, 16) and molsys.mol.GetBondBetweenAtoms(
+            atom.GetIdx(), n.GetIdx()).GetBondTypeAsDouble() == 2 for atom in (a, b) for n in atom.GetNeighbors())
+        assert is_stiff == carbonyl_like
+
+
+def test_dipeptide_flow_torsions_are_phi_and_psi_with_the_backbone_angle(systems_dir):
+    molsys = build(str(systems_dir / "ace_ala_nme.pdb"), BuildOptions(backbone_seeds=False))
+    zmat, rows = _rows(molsys)
+    soft = rows[~stiff_rows(zmat, molsys.mol, rows)]
+    # mdtraj's own phi (C-N-CA-C) and psi (N-CA-C-N) definitions give the central bonds.
+    topology = mdtraj.Topology.from_openmm(molsys.topology)
+    traj = mdtraj.Trajectory(molsys.seeds_nm[:1], topology)
+    (phi,), (psi,) = mdtraj.compute_phi(traj)[0], mdtraj.compute_psi(traj)[0]
+    expected = {frozenset(map(int, phi[1:3])), frozenset(map(int, psi[1:3]))}
+    assert {_central_bond(zmat, k) for k in soft} == expected
+    # The omega torsions are the stiff ones.
+    assert len(rows) - len(soft) == 2
+    names = {}
+    for col in context_angles(zmat, soft):
+        r = col + 2
+        atoms = (int(zmat.order[r]), int(zmat.bond_ref[r]), int(zmat.angle_ref[r]))
+        names[col] = tuple(topology.atom(i).name for i in atoms)
+    # The backbone angle N-CA-C (tau) is among them, in either placement direction.
+    assert any(sorted((n[0], n[2])) == ["C", "N"] and n[1] == "CA" for n in names.values()), names
+    # Every context angle has its vertex on phi's or psi's axis.
+    axis_atoms = {i for bond in expected for i in bond}
+    assert all(int(zmat.bond_ref[c + 2]) in axis_atoms for c in names)
+
+
+def _trained_conditional_flow():
+    """A two-column flow (of three moving torsions) conditioned on one input, fitted briefly to
+    torsions that shift with the context, so that its networks are no longer the identity."""
+    generator = torch.Generator().manual_seed(3)
+    context = torch.randn(2000, 1, generator=generator, dtype=torch.float64)
+    torsions = torch.cat([0.8 * context + 0.3 * torch.randn(2000, 1, generator=generator, dtype=torch.float64),
+                          torch.rand(2000, 2, generator=generator, dtype=torch.float64) * 2 - 1], 1)
+    torch.manual_seed(4)
+    flow = TorsionFlow(torsions.numpy(), flow_columns=np.array([0, 2]), n_context=1, transforms=2, hidden=16)
+    flow.refit_base(torsions.numpy(), context.numpy())
+    optimizer = torch.optim.AdamW(flow.parameters(), lr=5e-3, weight_decay=1e-3)
+    for _ in range(60):
+        index = torch.randint(0, 2000, (256,), generator=generator)
+        flow.fit_step(optimizer, torsions[index][:, [0, 2]], context[index], 0.5, generator)
+    return flow
+
+
+def test_conditional_flow_is_a_normalized_density_for_each_context(tmp_path):
+    flow = _trained_conditional_flow()
+    fixed = 0.4  # the other flow torsion, held while the first is integrated
+
+    def density(phi, c):
+        with torch.no_grad():
+            return float(torch.exp(flow.log_prob(torch.tensor([[phi, fixed]], dtype=torch.float64),
+                                                 torch.tensor([c], dtype=torch.float64))[0]))
+
+    masses = []
+    for c in (-1.5, 1.5):
+        # The 2-D density integrated over the circle in both torsions must be 1 (scipy dblquad).
+        total, _ = integrate.dblquad(
+            lambda t2, t1: float(torch.exp(flow.log_prob(torch.tensor([[t1, t2]], dtype=torch.float64),
+                                                         torch.tensor([c], dtype=torch.float64))[0])),
+            -np.pi, np.pi, -np.pi, np.pi, epsabs=1e-4)
+        assert total == pytest.approx(1.0, abs=2e-3)
+        masses.append(integrate.quad(density, 0.0, np.pi, args=(c,), limit=200)[0])
+    assert abs(masses[0] - masses[1]) > 0.05, masses  # the context changes the density
+
+    context = torch.tensor([0.7], dtype=torch.float64)
+    t, log_q = flow.sample(64, context, torch.Generator().manual_seed(5))
+    assert t.shape == (64, 2)
+    with torch.no_grad():
+        torch.testing.assert_close(log_q, flow.log_prob(t, context), atol=1e-8, rtol=0)
+
+    # The torsion outside the flow keeps a normalized one-torsion marginal of its own.
+    index = torch.tensor([1])
+    mass = integrate.quad(lambda x: float(torch.exp(flow.marginal_log_prob(
+        index, torch.tensor([x], dtype=torch.float64))[0])), -np.pi, np.pi, limit=200)[0]
+    assert mass == pytest.approx(1.0, abs=1e-6)
+
+    # A checkpoint carries the networks, the base, the other torsion's marginal and the
+    # context standardization: a fresh flow loaded from it gives identical densities.
+    torch.save(flow.state_dict(), tmp_path / "flow.pt")
+    fresh = TorsionFlow(np.zeros((1, 3)), flow_columns=np.array([0, 2]), n_context=1, transforms=2, hidden=16)
+    fresh.load_state_dict(torch.load(tmp_path / "flow.pt"))
+    probe = torch.tensor([[0.1, -2.0], [2.5, 0.3]], dtype=torch.float64)
+    with torch.no_grad():
+        assert torch.equal(fresh.log_prob(probe, context), flow.log_prob(probe, context))
+        assert torch.equal(fresh.marginal_log_prob(torch.tensor([1, 1]), probe[:, 0]),
+                           flow.marginal_log_prob(torch.tensor([1, 1]), probe[:, 0]))
+
+
+def test_flow_of_all_columns_without_context_checkpoints_only_its_networks():
+    # Checkpoints written before the flow had context or outside columns hold the NCSF's
+    # state alone; such a flow must still have exactly those keys, or old runs would not resume.
+    flow = TorsionFlow(np.zeros((2, 3)), transforms=2, hidden=8)
+    assert all(key.startswith("flow.") for key in flow.state_dict())
+    conditional = TorsionFlow(np.zeros((2, 3)), flow_columns=np.array([1]), n_context=2, transforms=2, hidden=8)
+    assert {"other_loc", "context_center", "context_scale"} <= set(conditional.state_dict())
