@@ -158,7 +158,9 @@ class EnergyEvaluator:
         positions_nm : array, shape ``(n_atoms, 3)``
         n_steps : int
         velocities_nm_ps : array, shape ``(n_atoms, 3)``, optional
-            Drawn from Maxwell-Boltzmann at the evaluator's temperature when omitted.
+            The integrator's own velocities, as returned by a previous call (half a step behind
+            the positions for Langevin). When omitted, drawn from Maxwell-Boltzmann at the
+            evaluator's temperature and shifted to the integrator's half step.
 
         Returns
         -------
@@ -169,6 +171,16 @@ class EnergyEvaluator:
         self.context.setPositions(x)
         if velocities_nm_ps is None:
             velocities_nm_ps = self.maxwell_boltzmann()
+            if isinstance(self.integrator, openmm.LangevinMiddleIntegrator):
+                # This integrator keeps velocities half a step behind the positions (leapfrog
+                # form): v(t - dt/2) = v(t) - (dt/2) f(x(t)) / m. Setting an on-step draw as is
+                # correlates v with x wrongly, and the bond vibrations amplify that at some
+                # segment lengths: measured on the four-atom chain, 50-step segments from
+                # fresh velocities gave a bond+angle energy of 2.83 kT against 2.50 exact.
+                forces = self.context.getState(getForces=True).getForces(asNumpy=True)
+                dt_ps = self.integrator.getStepSize().value_in_unit(unit.picosecond)
+                velocities_nm_ps = velocities_nm_ps - 0.5 * dt_ps * forces.value_in_unit(
+                    unit.kilojoule_per_mole / unit.nanometer) / self.masses_da[:, None]
         self.context.setVelocities(np.asarray(velocities_nm_ps, dtype=float))
         self.integrator.step(int(n_steps))
         state = self.context.getState(getPositions=True, getVelocities=True, getEnergy=True)
