@@ -80,43 +80,54 @@ def test_dipeptide_flow_torsions_are_phi_and_psi_with_the_backbone_angle(systems
 
 
 def _trained_conditional_flow():
-    """A two-column flow (of three moving torsions) conditioned on one input, fitted briefly to
-    torsions that shift with the context, so that its networks are no longer the identity."""
+    """A two-column flow (of three moving torsions) conditioned on an angle-like input and a
+    torsion, fitted briefly to torsions that follow them, so that its networks are no longer
+    the identity."""
     generator = torch.Generator().manual_seed(3)
-    context = torch.randn(2000, 1, generator=generator, dtype=torch.float64)
-    torsions = torch.cat([0.8 * context + 0.3 * torch.randn(2000, 1, generator=generator, dtype=torch.float64),
-                          torch.rand(2000, 2, generator=generator, dtype=torch.float64) * 2 - 1], 1)
+    n = 2000
+    angle = 1.9 + 0.05 * torch.randn(n, 1, generator=generator, dtype=torch.float64)
+    switch = torch.where(torch.rand(n, 1, generator=generator) < 0.5, 0.0, np.pi).double()  # cis/trans
+    noise = 0.3 * torch.randn(n, 2, generator=generator, dtype=torch.float64)
+    torsions = torch.cat([16.0 * (angle - 1.9) + noise[:, :1], switch,
+                          torch.remainder(switch + 1.0 + noise[:, 1:] + np.pi, 2 * np.pi) - np.pi], 1)
+    context = torch.cat([angle, switch], 1)
     torch.manual_seed(4)
-    flow = TorsionFlow(torsions.numpy(), flow_columns=np.array([0, 2]), n_context=1, transforms=2, hidden=16)
+    flow = TorsionFlow(torsions.numpy(), flow_columns=np.array([0, 2]), context_periodic=np.array([False, True]),
+                       transforms=2, hidden=16)
     flow.refit_base(torsions.numpy(), context.numpy())
     optimizer = torch.optim.AdamW(flow.parameters(), lr=5e-3, weight_decay=1e-3)
-    for _ in range(60):
-        index = torch.randint(0, 2000, (256,), generator=generator)
+    for _ in range(200):
+        index = torch.randint(0, n, (256,), generator=generator)
         flow.fit_step(optimizer, torsions[index][:, [0, 2]], context[index], 0.5, generator)
     return flow
 
 
 def test_conditional_flow_is_a_normalized_density_for_each_context(tmp_path):
     flow = _trained_conditional_flow()
-    fixed = 0.4  # the other flow torsion, held while the first is integrated
-
-    def density(phi, c):
+    means = []
+    for c in ([1.85, 0.0], [1.95, np.pi]):
+        # The 2-D density over the torus must integrate to 1. The rectangle rule on a uniform
+        # grid is the trapezoid rule for a periodic function and converges spectrally for a
+        # smooth one (a textbook fact of quadrature); scipy's trapezoid does the sums.
+        grid = np.linspace(-np.pi, np.pi, 257)
+        t1, t2 = np.meshgrid(grid, grid, indexing="ij")
         with torch.no_grad():
-            return float(torch.exp(flow.log_prob(torch.tensor([[phi, fixed]], dtype=torch.float64),
-                                                 torch.tensor([c], dtype=torch.float64))[0]))
-
-    masses = []
-    for c in (-1.5, 1.5):
-        # The 2-D density integrated over the circle in both torsions must be 1 (scipy dblquad).
-        total, _ = integrate.dblquad(
-            lambda t2, t1: float(torch.exp(flow.log_prob(torch.tensor([[t1, t2]], dtype=torch.float64),
-                                                         torch.tensor([c], dtype=torch.float64))[0])),
-            -np.pi, np.pi, -np.pi, np.pi, epsabs=1e-4)
+            values = torch.exp(flow.log_prob(torch.as_tensor(np.stack([t1.ravel(), t2.ravel()], 1)),
+                                             torch.tensor(c, dtype=torch.float64))).numpy().reshape(t1.shape)
+        total = integrate.trapezoid(integrate.trapezoid(values, grid, axis=1), grid)
         assert total == pytest.approx(1.0, abs=2e-3)
-        masses.append(integrate.quad(density, 0.0, np.pi, args=(c,), limit=200)[0])
-    assert abs(masses[0] - masses[1]) > 0.05, masses  # the context changes the density
+        t, _ = flow.sample(4000, torch.tensor(c, dtype=torch.float64), torch.Generator().manual_seed(1))
+        means.append(np.angle(np.exp(1j * t.numpy()).mean(0)))  # circular means of both torsions
+    # The angle input moves the first torsion as the training data did (-0.8 and +0.8 rad).
+    assert abs(np.angle(np.exp(1j * (means[1][0] - means[0][0])))) > 0.5, means
+    # The torsion input reaches the networks: turning it alone changes the density.
+    probe = torch.tensor([[0.0, 1.0]], dtype=torch.float64)
+    with torch.no_grad():
+        cis, trans = (float(flow.log_prob(probe, torch.tensor([1.9, switch], dtype=torch.float64))[0])
+                      for switch in (0.0, np.pi))
+    assert abs(cis - trans) > 0.1, (cis, trans)
 
-    context = torch.tensor([0.7], dtype=torch.float64)
+    context = torch.tensor([1.9, np.pi], dtype=torch.float64)
     t, log_q = flow.sample(64, context, torch.Generator().manual_seed(5))
     assert t.shape == (64, 2)
     with torch.no_grad():
@@ -131,7 +142,8 @@ def test_conditional_flow_is_a_normalized_density_for_each_context(tmp_path):
     # A checkpoint carries the networks, the base, the other torsion's marginal and the
     # context standardization: a fresh flow loaded from it gives identical densities.
     torch.save(flow.state_dict(), tmp_path / "flow.pt")
-    fresh = TorsionFlow(np.zeros((1, 3)), flow_columns=np.array([0, 2]), n_context=1, transforms=2, hidden=16)
+    fresh = TorsionFlow(np.zeros((1, 3)), flow_columns=np.array([0, 2]), context_periodic=np.array([False, True]),
+                        transforms=2, hidden=16)
     fresh.load_state_dict(torch.load(tmp_path / "flow.pt"))
     probe = torch.tensor([[0.1, -2.0], [2.5, 0.3]], dtype=torch.float64)
     with torch.no_grad():
@@ -145,5 +157,6 @@ def test_flow_of_all_columns_without_context_checkpoints_only_its_networks():
     # state alone; such a flow must still have exactly those keys, or old runs would not resume.
     flow = TorsionFlow(np.zeros((2, 3)), transforms=2, hidden=8)
     assert all(key.startswith("flow.") for key in flow.state_dict())
-    conditional = TorsionFlow(np.zeros((2, 3)), flow_columns=np.array([1]), n_context=2, transforms=2, hidden=8)
+    conditional = TorsionFlow(np.zeros((2, 3)), flow_columns=np.array([1]), context_periodic=np.array([False, True]),
+                              transforms=2, hidden=8)
     assert {"other_loc", "context_center", "context_scale"} <= set(conditional.state_dict())

@@ -161,7 +161,7 @@ def test_flow_moves_alone_match_quadrature(tmp_path):
     # exp(-V/kT) q(phi) over each well; the run must tell them apart from the exact ones.
     # The flow is untrained (its base alone), so q does not depend on its context (bond
     # angles); any walker's serve.
-    context = cartesian_to_internal(sampler.zmat, torch.as_tensor(seeds[:1])).angles_rad[0, sampler.context_columns]
+    context = sampler.conditioning(cartesian_to_internal(sampler.zmat, torch.as_tensor(seeds[:1])))[0]
 
     def log_q(phi):
         with torch.no_grad():

@@ -193,9 +193,8 @@ def _sampler_options(fn):
                      help="remd: number of temperatures (geometric ladder)."),
         click.option("--top-temperature", "top_temperature_K", type=float, default=600.0,
                      show_default=True, help="remd: the ladder's highest temperature (K)."),
-        click.option("--local-move", type=click.Choice(["langevin", "ghmc"]), default=None,
-                     help="Local move: unadjusted Langevin or exact GHMC [default: ghmc for remd,"
-                          " whose exchanges use total energies, else langevin]."),
+        click.option("--local-move", type=click.Choice(["langevin", "ghmc"]), default="langevin",
+                     show_default=True, help="Local move: unadjusted Langevin or exact GHMC."),
     ]
     for option in reversed(options):
         fn = option(fn)
@@ -328,7 +327,6 @@ def run(run_dir, hours, samples, temperature_K, walkers, training_cycles, langev
     from hopwell.systems.builder import BuildOptions
 
     budget = _budget(hours, samples)
-    local_move = local_move or ("ghmc" if method == "remd" else "langevin")
     if method in ("md", "remd"):  # no flow to train: every cycle is production
         training_cycles, hours_share = 0, None
     else:

@@ -129,9 +129,6 @@ def plan_runs(input_spec: str, out_dir: Path, methods, repeats: int, budget_s: f
             flow = method == "flow"
             job_settings = replace(
                 settings, method=method, seed=settings.seed + repeat,
-                # Exchanges use total energies, so replica exchange gets the exact local move
-                # (1 fs Langevin biased its populations on the four-atom chain; DEVELOPERS.md).
-                local_move="ghmc" if method == "remd" else settings.local_move,
                 training_cycles=10**9 if flow else 0,
                 training_seconds=TRAINING_SHARE * budget_s if flow else None,
             )

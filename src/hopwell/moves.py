@@ -145,9 +145,10 @@ class TorsionFlow(torch.nn.Module):
     """Densities over ``n_moving`` torsions in ``[-pi, pi)``: one-torsion marginals and a flow.
 
     The base is a von Mises mixture per moving torsion (its marginals serve the one-torsion
-    moves); the flow covers the columns ``flow_columns`` of them, optionally conditioned on
-    ``n_context`` kept coordinates (bond angles, :func:`context_angles`), standardized by the
-    mean and spread of the last :meth:`refit_base` data.
+    moves); the flow covers the columns ``flow_columns`` of them, optionally conditioned on kept
+    coordinates: bond angles (:func:`context_angles`), which enter the networks standardized by
+    the mean and spread of the last :meth:`refit_base` data, and torsions outside the flow,
+    which enter as (cos, sin).
 
     Parameters
     ----------
@@ -155,14 +156,16 @@ class TorsionFlow(torch.nn.Module):
         Observed torsions (the seeds) that place the base's mixture components.
     flow_columns : numpy.ndarray of int, optional
         The moving torsions the flow redraws (default: all).
-    n_context : int
-        Number of conditioning inputs; 0 for an unconditional flow.
+    context_periodic : numpy.ndarray of bool, optional
+        One entry per conditioning input, True for a torsion; None or empty for an
+        unconditional flow.
     transforms, hidden, bins : int
         zuko NCSF settings.
     """
 
-    def __init__(self, torsions_rad: np.ndarray, flow_columns: np.ndarray | None = None, n_context: int = 0,
-                 transforms: int = 3, hidden: int = 64, bins: int = 8):
+    def __init__(self, torsions_rad: np.ndarray, flow_columns: np.ndarray | None = None,
+                 context_periodic: np.ndarray | None = None, transforms: int = 3, hidden: int = 64,
+                 bins: int = 8):
         super().__init__()
         torsions_rad = np.atleast_2d(np.asarray(torsions_rad, dtype=float))
         if torsions_rad.shape[1] < 1:
@@ -174,24 +177,26 @@ class TorsionFlow(torch.nn.Module):
         self.register_buffer("flow_columns", torch.as_tensor(columns), persistent=False)
         self.register_buffer("other_columns", torch.as_tensor(np.setdiff1d(np.arange(self.n_moving), columns)),
                              persistent=False)
-        self.n_flow, self.n_context = len(columns), int(n_context)
+        periodic = torch.as_tensor(np.asarray([] if context_periodic is None else context_periodic, dtype=bool))
+        self.register_buffer("context_lin", torch.nonzero(~periodic).flatten(), persistent=False)
+        self.register_buffer("context_circ", torch.nonzero(periodic).flatten(), persistent=False)
+        self.n_flow, self.n_context = len(columns), len(periodic)
+        n_lin = len(self.context_lin)
         # Mixture parameters of the torsions outside the flow, and the context standardization:
         # checkpointed only where they exist, so that flows saved without them still load.
         n_other = len(self.other_columns)
         loc, kappa, logits = _base_parameters(torsions_rad)
         for name, value in zip(("other_loc", "other_kappa", "other_logits"), (loc, kappa, logits)):
             self.register_buffer(name, value[self.other_columns].clone(), persistent=n_other > 0)
-        self.register_buffer("context_center", torch.zeros(self.n_context, dtype=torch.float64),
-                             persistent=self.n_context > 0)
-        self.register_buffer("context_scale", torch.ones(self.n_context, dtype=torch.float64),
-                             persistent=self.n_context > 0)
+        self.register_buffer("context_center", torch.zeros(n_lin, dtype=torch.float64), persistent=n_lin > 0)
+        self.register_buffer("context_scale", torch.ones(n_lin, dtype=torch.float64), persistent=n_lin > 0)
         # Each zuko circular spline transform shifts the circle by pi before its spline, so an
         # even number of transforms with zeroed output layers is exactly the identity: the
         # untrained flow equals its physics base (measured: held-out log-likelihood -28 for an
         # odd, randomly initialized flow against -5.7 for its base on Ace-Ala-NMe torsions).
         transforms += transforms % 2
         self.flow = zuko.flows.NCSF(
-            features=self.n_flow, context=self.n_context, transforms=transforms, bins=bins,
+            features=self.n_flow, context=n_lin + 2 * len(self.context_circ), transforms=transforms, bins=bins,
             hidden_features=(hidden, hidden),
         ).double()
         self.flow.base = UnconditionalDistribution(
@@ -209,14 +214,21 @@ class TorsionFlow(torch.nn.Module):
                 for param in params:
                     param.zero_()
 
-    def _context(self, context: torch.Tensor | None, batch: int | None = None) -> torch.Tensor | None:
-        """Standardized network input from raw context ``(..., n_context)``, expanded to
-        ``batch`` rows when one set is shared; None for an unconditional flow."""
+    def _context(self, context: torch.Tensor | None, batch: int | None = None, noise: float = 0.0,
+                 generator: torch.Generator | None = None) -> torch.Tensor | None:
+        """Network input from raw context ``(..., n_context)``: standardized angles (plus Gaussian
+        noise of spread ``noise``), then cos and sin of the torsions; expanded to ``batch`` rows
+        when one set is shared. None for an unconditional flow."""
         if self.n_context == 0:
             return None
         if context is None:
             raise ValueError("this flow is conditional: pass its context")
-        z = (torch.as_tensor(context, dtype=torch.float64) - self.context_center) / self.context_scale
+        context = torch.as_tensor(context, dtype=torch.float64)
+        lin = (context[..., self.context_lin] - self.context_center) / self.context_scale
+        if noise > 0:
+            lin = lin + noise * torch.randn(lin.shape, dtype=lin.dtype, generator=generator)
+        circ = context[..., self.context_circ]
+        z = torch.cat([lin, torch.cos(circ), torch.sin(circ)], -1)
         return z.expand(batch, -1) if batch is not None and z.dim() == 1 else z
 
     def base_log_prob(self, torsions_rad: torch.Tensor) -> torch.Tensor:
@@ -232,8 +244,8 @@ class TorsionFlow(torch.nn.Module):
             getattr(self.flow.base, f"_{name}").copy_(value[self.flow_columns])
         for name, value in zip(("other_loc", "other_kappa", "other_logits"), (loc, kappa, logits)):
             getattr(self, name).copy_(value[self.other_columns])
-        if self.n_context and context is not None:
-            context = torch.as_tensor(context, dtype=torch.float64)
+        if len(self.context_lin) and context is not None:
+            context = torch.as_tensor(context, dtype=torch.float64)[:, self.context_lin]
             self.context_center.copy_(context.mean(0))
             # A floor keeps a coordinate that has not moved yet from blowing up its input.
             self.context_scale.copy_(context.std(0, correction=0).clamp_min(1e-4))
@@ -300,12 +312,10 @@ class TorsionFlow(torch.nn.Module):
         """One maximum-likelihood step on a batch; returns the mean negative log-likelihood.
 
         ``context_noise`` adds Gaussian noise of that spread (in standardized units) to the
-        context, a regularizer against fitting the noise of correlated training frames.
+        context angles, a regularizer against fitting the noise of correlated training frames.
         """
         t = torch.remainder(torch.as_tensor(torsions_rad, dtype=torch.float64) + np.pi, 2 * np.pi) - np.pi
-        z = self._context(context)
-        if z is not None and context_noise > 0:
-            z = z + context_noise * torch.randn(z.shape, dtype=z.dtype, generator=generator)
+        z = self._context(context, noise=context_noise, generator=generator)
         loss = -self.flow(z).log_prob(t).mean()
         optimizer.zero_grad()
         loss.backward()

@@ -22,10 +22,13 @@ production. The exchange counts per neighbour pair are checkpointed with the oth
 
 The criterion weighs the total potential energy, so a bias of the local move in any degree of
 freedom, bonds and angles included, reaches the target rung's conformer populations (a flow
-move, which keeps bonds and angles, is immune to this). On the four-atom test chain the
-unadjusted 1 fs Langevin segments put about 0.3 kT too much energy in the bonds and angles at
-300 K and shifted rung 0's well populations by up to 9 points; GHMC (``local_move="ghmc"``),
-exact for any time step, matched the quadrature (tests/test_replica.py).
+move, which keeps bonds and angles, is immune to this). On the four-atom test chain, Langevin
+segments started from on-step Maxwell-Boltzmann velocities (the integrator keeps them half a
+step behind) put up to 0.3 kT too much energy in the bonds and angles and shifted rung 0's well
+populations by up to 9 points; with the velocities shifted to the half step
+(:meth:`hopwell.energy.EnergyEvaluator.langevin`), 1 fs Langevin and GHMC
+(``local_move="ghmc"``, exact for any time step) both match the quadrature
+(tests/test_replica.py).
 """
 
 from __future__ import annotations

@@ -3,9 +3,10 @@
 Each cycle, for each walker:
 
 1. a Langevin segment (``LangevinMiddleIntegrator``, velocities drawn afresh from
-   Maxwell-Boltzmann at the start of the segment, which leaves the Boltzmann distribution
-   invariant);
-2. a block of independent proposals from the flow, drawn and scored in one batch, each accepted
+   Maxwell-Boltzmann at the start of the segment and moved to the integrator's half step,
+   which leaves the Boltzmann distribution invariant up to the step's own error);
+2. a block of proposals from the flow of the torsions about rotatable single bonds, given the
+   walker's bond angles (:mod:`hopwell.moves`), drawn and scored in one batch, each accepted
    with the Metropolis-Hastings ratio of an independence sampler in internal coordinates q,
    whose target is p(q) ~ exp(-u(x(q))) J(q) (see :mod:`hopwell.internal`)::
 
@@ -229,16 +230,22 @@ class Sampler:
         # Production walker states per dart region (index 0: outside every region).
         self.basin_counts = np.zeros(1 + (self.darts.n_centres if self.darts else 0), dtype=np.int64)
         stiff = stiff_rows(self.zmat, mol, self.moving)
-        # Columns of self.moving the flow redraws; the context: angle columns it is given.
+        # Columns of self.moving the flow redraws. Its context: the angle columns
+        # self.context_columns, then the moving torsions it leaves out (an amide's cis/trans
+        # state decides where its neighbours' torsions are free).
         self.flow_columns = (np.arange(len(self.moving)) if settings.flow_stiff_torsions or stiff.all()
                              else np.flatnonzero(~stiff))
-        self.context_columns = (context_angles(self.zmat, self.moving[self.flow_columns])
-                                if settings.flow_context else np.zeros(0, dtype=int))
+        self.other_rows = np.setdiff1d(self.moving, self.moving[self.flow_columns])
+        if not settings.flow_context:
+            self.context_columns, self.other_rows = np.zeros(0, dtype=int), np.zeros(0, dtype=int)
+        else:
+            self.context_columns = context_angles(self.zmat, self.moving[self.flow_columns])
+        periodic = np.r_[np.zeros(len(self.context_columns), bool), np.ones(len(self.other_rows), bool)]
         seeds_ic = cartesian_to_internal(self.zmat, torch.as_tensor(seeds_nm))
         with torch.random.fork_rng():  # the network's initial weights follow settings.seed
             torch.manual_seed(settings.seed)
             self.flow = TorsionFlow(seeds_ic.torsions_rad[:, self.moving].numpy(), self.flow_columns,
-                                    len(self.context_columns), transforms=settings.flow_layers,
+                                    periodic, transforms=settings.flow_layers,
                                     hidden=settings.flow_hidden, bins=settings.flow_bins)
         self.optimizer = torch.optim.AdamW(self.flow.parameters(), lr=settings.learning_rate,
                                            weight_decay=settings.weight_decay)
@@ -300,7 +307,7 @@ class Sampler:
         kT = self.evaluator.kT
         with torch.no_grad():
             current = cartesian_to_internal(self.zmat, torch.as_tensor(self.positions_nm[walker:walker + 1]))
-            context = current.angles_rad[0, self.context_columns]
+            context = self.conditioning(current)[0]
             rows = self.moving[self.flow_columns]
             t_new, log_q_new = self.flow.sample(k, context, self.torch_rng)
             torsions = current.torsions_rad.repeat(k, 1)
@@ -422,11 +429,15 @@ class Sampler:
                 self.positions_nm[walker], self.energies_kj[walker] = positions[0], energy
                 current = landed  # the new state's coordinates, already computed
 
+    def conditioning(self, ic) -> torch.Tensor:
+        """The flow's conditioning input of states ``ic``: angles, then left-out torsions."""
+        return torch.cat([ic.angles_rad[:, self.context_columns], ic.torsions_rad[:, self.other_rows]], 1)
+
     def _buffer_add(self, positions_nm: np.ndarray) -> None:
         """Queue states for the flow fit: moving torsions, then the flow's context (float32)."""
         with torch.no_grad():
             ic = cartesian_to_internal(self.zmat, torch.as_tensor(positions_nm, dtype=torch.float64))
-        rows = torch.cat([ic.torsions_rad[:, self.moving], ic.angles_rad[:, self.context_columns]], 1)
+        rows = torch.cat([ic.torsions_rad[:, self.moving], self.conditioning(ic)], 1)
         self.buffer.extend(rows.numpy().astype(np.float32))
 
     def _fit(self) -> None:
