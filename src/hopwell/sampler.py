@@ -87,8 +87,8 @@ class SamplerSettings:
         are left to the one-torsion moves and darts unless the molecule has no other
         (:mod:`hopwell.moves` gives the measured reason).
     flow_context : bool
-        Condition the flow on the bond angles at its torsions' central atoms: it then models
-        p(t | angles) rather than the marginal p(t).
+        Condition the flow on the bond angles at its torsions' central atoms and on the moving
+        torsions it leaves out: it then models p(t | c) rather than the marginal p(t).
     context_noise : float
         Spread of the Gaussian noise added to the standardized context while fitting.
     darts_per_cycle : int
