@@ -4,7 +4,7 @@
   (common-practice chemistry); on Ace-Ala-NMe the flow's torsions are then exactly mdtraj's
   phi and psi.
 * The context angles of phi and psi include the backbone angle N-CA-C (mdtraj atom names).
-* A conditional flow is a normalized density for every context (scipy quadrature), its samples
+* A conditional flow is a normalized density for every context (scipy trapezoid on the torus), its samples
   carry their own log q, it depends on the context, and its checkpoint restores it exactly.
 """
 
@@ -17,7 +17,7 @@ import torch
 from scipy import integrate
 
 from hopwell.darts import rotatable_rows
-from hopwell.internal import build_zmatrix, cartesian_to_internal
+from hopwell.internal import build_zmatrix
 from hopwell.moves import TorsionFlow, context_angles, moving_torsions, stiff_rows
 from hopwell.systems.builder import BuildOptions, build, rotatable_bonds
 

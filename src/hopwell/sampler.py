@@ -232,7 +232,7 @@ class Sampler:
         stiff = stiff_rows(self.zmat, mol, self.moving)
         # Columns of self.moving the flow redraws. Its context: the angle columns
         # self.context_columns, then the moving torsions it leaves out (an amide's cis/trans
-        # state decides where its neighbours' torsions are free).
+        # state changes which positions of its neighbours clash).
         self.flow_columns = (np.arange(len(self.moving)) if settings.flow_stiff_torsions or stiff.all()
                              else np.flatnonzero(~stiff))
         self.other_rows = np.setdiff1d(self.moving, self.moving[self.flow_columns])
