@@ -4,8 +4,9 @@
   (common-practice chemistry); on Ace-Ala-NMe the flow's torsions are then exactly mdtraj's
   phi and psi.
 * The context angles of phi and psi include the backbone angle N-CA-C (mdtraj atom names).
-* A conditional flow is a normalized density for every context (scipy trapezoid on the torus), its samples
-  carry their own log q, it depends on the context, and its checkpoint restores it exactly.
+* A conditional flow is a normalized density for every context (scipy's trapezoid rule on the
+  torus), its samples carry their own log q, it depends on the context, and its checkpoint
+  restores it exactly.
 """
 
 from __future__ import annotations
