@@ -577,3 +577,45 @@ def test_cli_resume_of_a_non_run_directory_exits_2(tmp_path):
         with pytest.raises(InputError, match="not a hopwell run directory"):
             RunStore.open(target)
     assert not (tmp_path / "missing").exists()
+
+
+# -- one writer per directory ---------------------------------------------------------------
+def test_resume_is_refused_while_another_process_samples_into_the_directory(finished_run, tmp_path):
+    """A second writer would drop the first one's uncounted chunks; the lock must refuse it.
+
+    The holder is a separate process, killed with SIGKILL afterwards: the kernel frees a flock
+    when its holder dies (flock(2), Linux man-pages), so a killed run must not block a resume.
+    """
+    run_dir = _copy_run(finished_run, tmp_path / "run")
+    holder = subprocess.Popen(
+        [sys.executable, "-c", "import sys, time\nfrom hopwell.store import RunStore\n"
+         f"with RunStore({str(run_dir)!r}).exclusive():\n    print('held', flush=True)\n"
+         "    time.sleep(120)\n"],
+        stdout=subprocess.PIPE, text=True, env=ENV)
+    try:
+        assert holder.stdout.readline().strip() == "held"
+        files = {p.name: p.read_bytes() for p in run_dir.rglob("*") if p.is_file()}
+        message = _one_line_error(_hopwell(["resume", str(run_dir)], cwd=tmp_path))
+        assert "in use by another hopwell process" in message and f"pid {holder.pid}" in message
+        assert {p.name: p.read_bytes() for p in run_dir.rglob("*") if p.is_file()} == files
+        status = json.loads(_hopwell(["status", str(run_dir), "--json"], cwd=tmp_path).stdout)
+        assert status["sampling_pid"] == holder.pid
+    finally:
+        holder.kill()
+        holder.wait()
+    assert RunStore.open(run_dir).writer_pid() is None
+    result = _hopwell(["resume", str(run_dir)], cwd=tmp_path)
+    assert result.returncode == 0, result.stderr
+    _check_run(run_dir)
+
+
+def test_a_second_start_into_a_directory_being_started_is_refused(tmp_path):
+    """Before run.toml exists only the lock stops two starts from writing one directory."""
+    from hopwell.run import start_run
+    from hopwell.sampler import Budget, SamplerSettings
+    from hopwell.systems.builder import BuildOptions
+
+    with RunStore(tmp_path / "run").exclusive():
+        with pytest.raises(InputError, match=f"in use by another hopwell process \\(pid {os.getpid()}\\)"):
+            start_run("CCCC", tmp_path / "run", BuildOptions(), SamplerSettings(), Budget(samples=10))
+    assert not (tmp_path / "run" / "run.toml").exists()

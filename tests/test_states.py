@@ -121,6 +121,7 @@ def test_status_and_reweighting_refusal(tmp_path):
     assert result.exit_code == 0, result.output
     status = json.loads(CliRunner().invoke(main, ["status", str(run_dir), "--json"]).output)
     assert status["phase"] == "production" and status["production_samples"] >= 200
+    assert status["sampling_pid"] is None  # the run has ended, so nothing holds run.lock
     # 300 K -> 500 K is outside the reweighting window: refused with exit code 2.
     result = CliRunner().invoke(main, ["report", str(run_dir), "--reweight-temperature", "500"])
     assert result.exit_code == 2 and "window" in result.output

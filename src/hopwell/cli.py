@@ -432,6 +432,7 @@ def status(run_dir, as_json):
         return s["accepted"] / s["proposed"] if s["proposed"] else None
 
     info = {
+        "sampling_pid": store.writer_pid(),  # the process sampling into run_dir now, if any
         "phase": "production" if int(state["training_end_cycle"]) >= 0 else "training",
         "cycle": int(state["cycle"]),
         "elapsed_min": float(state["elapsed_s"]) / 60.0,

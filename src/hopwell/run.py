@@ -87,14 +87,17 @@ def start_run(spec: str, out_dir: Path, build_options: BuildOptions, settings: S
         "kind": molsys.kind,
         "budget": {"samples": budget.samples, "seconds": budget.seconds},
     }
-    store = RunStore.create(Path(out_dir), config, {
-        "molecule.sdf": _molecule_sdf(molsys),
-        "topology.pdb": _topology_pdb(molsys),
-        "system.xml": molsys.to_xml().encode(),
-    })
-    store.log(f"run started: {molsys.summary()['formula']}, {config['walkers']} walkers")
-    sampler = make_sampler(molsys.mol, molsys.system, molsys.seeds_nm, settings, store, walkers, platform)
-    sampler.run(budget, progress, stop_when)
+    RunStore.refuse_existing(Path(out_dir))  # before the lock, which would touch run.lock
+    with RunStore(Path(out_dir)).exclusive():  # then create checks again: two starts may race
+        store = RunStore.create(Path(out_dir), config, {
+            "molecule.sdf": _molecule_sdf(molsys),
+            "topology.pdb": _topology_pdb(molsys),
+            "system.xml": molsys.to_xml().encode(),
+        })
+        store.log(f"run started: {molsys.summary()['formula']}, {config['walkers']} walkers")
+        sampler = make_sampler(molsys.mol, molsys.system, molsys.seeds_nm, settings, store, walkers,
+                               platform)
+        sampler.run(budget, progress, stop_when)
     return sampler
 
 
@@ -102,7 +105,9 @@ def load_sampler(run_dir: Path) -> Sampler:
     """A sampler restored from a run directory's newest checkpoint.
 
     A start killed after the directory was created but before checkpoint zero leaves no
-    state.npz and no chunks; the sampler then starts from the beginning.
+    state.npz and no chunks; the sampler then starts from the beginning. Restoring removes the
+    chunks no checkpoint counts, so a caller that is not :func:`resume_run` must make sure no
+    other process samples into ``run_dir`` (:meth:`RunStore.exclusive`).
     """
     store = RunStore.open(Path(run_dir))
     state = store.read_state()
@@ -134,10 +139,14 @@ def saved_budget(run_dir: Path) -> Budget:
 
 
 def resume_run(run_dir: Path, budget: Budget | None = None, progress=None, stop_when=None) -> Sampler:
-    """Continue a run from its newest checkpoint, with its own budget unless one is given."""
-    sampler = load_sampler(run_dir)
-    if budget is None:
-        budget = saved_budget(run_dir)
-    sampler.store.log(f"resumed at cycle {sampler.cycle}")
-    sampler.run(budget, progress, stop_when)
+    """Continue a run from its newest checkpoint, with its own budget unless one is given.
+
+    Refused (:class:`~hopwell.errors.InputError`) while another process samples into ``run_dir``.
+    """
+    with RunStore.open(Path(run_dir)).exclusive():
+        sampler = load_sampler(run_dir)
+        if budget is None:
+            budget = saved_budget(run_dir)
+        sampler.store.log(f"resumed at cycle {sampler.cycle}")
+        sampler.run(budget, progress, stop_when)
     return sampler

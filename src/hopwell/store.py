@@ -10,20 +10,27 @@ Layout of a run directory ``DIR``::
     DIR/state.npz           the sampler checkpoint (walker states, counters, RNG state)
     DIR/flow-NNNNNN.pt      flow checkpoints (torch state dicts), named by cycle
     DIR/progress.log        human-readable progress lines (append-only)
+    DIR/run.lock            held (flock) by the one process sampling into DIR; holds its pid
 
 Crash safety rests on one ordering: a chunk is written (atomically) before the checkpoint that
 counts it. After ``kill -9`` at any instant, the newest checkpoint names ``next_chunk``; chunks
 numbered at or above it belong to work the checkpoint does not know about and are removed on
 resume, so no sample is lost (everything before the checkpoint is in its chunks) or
-duplicated (everything after is redone from the checkpoint's state).
+duplicated (everything after is redone from the checkpoint's state). The ordering assumes one
+writer: a process that samples into the directory holds an exclusive ``flock`` on ``run.lock``
+(:meth:`RunStore.exclusive`), so a second start or resume of the same directory is refused. The
+kernel releases the lock when its holder dies, ``kill -9`` included, so no stale lock blocks a
+resume.
 """
 
 from __future__ import annotations
 
+import fcntl
 import io
 import os
 import time
 import tomllib
+from contextlib import contextmanager
 from pathlib import Path
 
 import numpy as np
@@ -35,6 +42,7 @@ CHUNK_DIR = "chunks"
 STATE_FILE = "state.npz"
 CONFIG_FILE = "run.toml"
 LOG_FILE = "progress.log"
+LOCK_FILE = "run.lock"
 
 # Record fields stored per chain sample ("states") and per flow proposal ("proposals").
 # "time_s" is the run's sampling time (resumes included) when the state was recorded.
@@ -83,14 +91,19 @@ class RunStore:
     def create(cls, path: Path, config: dict, files: dict[str, bytes]) -> "RunStore":
         """Make a new run directory; refuses one that already holds a run."""
         path = Path(path)
-        if (path / CONFIG_FILE).exists():
-            raise InputError(f"{path} already holds a run; use 'hopwell resume {path}' or another -o")
+        cls.refuse_existing(path)
         (path / CHUNK_DIR).mkdir(parents=True, exist_ok=True)
         store = cls(path)
         for name, data in files.items():
             atomic_write_bytes(path / name, data)
         atomic_write_bytes(path / CONFIG_FILE, to_toml(config).encode())  # last: marks a run
         return store
+
+    @staticmethod
+    def refuse_existing(path: Path) -> None:
+        """Raise InputError if ``path`` already holds a run (a new run must not overwrite it)."""
+        if (Path(path) / CONFIG_FILE).exists():
+            raise InputError(f"{path} already holds a run; use 'hopwell resume {path}' or another -o")
 
     @classmethod
     def open(cls, path: Path) -> "RunStore":
@@ -99,6 +112,48 @@ class RunStore:
         if not (path / CONFIG_FILE).is_file():
             raise InputError(f"{path} is not a hopwell run directory (no {CONFIG_FILE})")
         return cls(path)
+
+    # -- the one writer --------------------------------------------------------------------
+    @contextmanager
+    def exclusive(self):
+        """Hold the directory's write lock for the ``with`` block; refuse if another process holds it.
+
+        Raises
+        ------
+        InputError
+            Another live process (its pid in the message) is sampling into this directory.
+        """
+        self.path.mkdir(parents=True, exist_ok=True)
+        fd = os.open(self.path / LOCK_FILE, os.O_RDWR | os.O_CREAT, 0o644)
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            holder = os.pread(fd, 32, 0).decode(errors="replace").strip()
+            os.close(fd)
+            raise InputError(f"{self.path} is in use by another hopwell process"
+                             f"{f' (pid {holder})' if holder else ''}; wait for it or stop it first") from None
+        try:
+            os.ftruncate(fd, 0)
+            os.pwrite(fd, f"{os.getpid()}\n".encode(), 0)
+            yield self
+        finally:
+            os.close(fd)  # closing the last descriptor releases the flock
+
+    def writer_pid(self) -> int | None:
+        """The pid of the process sampling into this directory now, or None if there is none."""
+        try:
+            fd = os.open(self.path / LOCK_FILE, os.O_RDONLY)
+        except FileNotFoundError:
+            return None
+        try:
+            fcntl.flock(fd, fcntl.LOCK_SH | fcntl.LOCK_NB)
+        except BlockingIOError:
+            text = os.pread(fd, 32, 0).decode(errors="replace").strip()
+            return int(text) if text.isdigit() else -1
+        else:
+            return None
+        finally:
+            os.close(fd)
 
     # -- configuration and files ----------------------------------------------------------
     def config(self) -> dict:
