@@ -128,10 +128,10 @@ class RunStore:
         try:
             fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
         except BlockingIOError:
-            holder = os.pread(fd, 32, 0).decode(errors="replace").strip()
             os.close(fd)
+            holder = self.writer_pid()  # None if the holder ended meanwhile
             raise InputError(f"{self.path} is in use by another hopwell process"
-                             f"{f' (pid {holder})' if holder else ''}; wait for it or stop it first") from None
+                             f"{f' (pid {holder})' if holder and holder > 0 else ''}; wait for it or stop it first") from None
         try:
             os.ftruncate(fd, 0)
             os.pwrite(fd, f"{os.getpid()}\n".encode(), 0)
