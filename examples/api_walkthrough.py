@@ -12,9 +12,10 @@ from pathlib import Path
 
 import torch
 
-from hopwell.report import analyse, write_report
-from hopwell.run import start_run
-from hopwell.sampler import Budget, SamplerSettings
+from hopwell.analysis.summary import analyse
+from hopwell.report import write_report
+from hopwell.sampling.run import start_run
+from hopwell.sampling.sampler import Budget, SamplerSettings
 from hopwell.systems.builder import BuildOptions, build
 
 parser = argparse.ArgumentParser()

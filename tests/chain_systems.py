@@ -16,7 +16,7 @@ import openmm
 from rdkit import Chem
 from scipy import constants, integrate, optimize
 
-from hopwell.store import RunStore
+from hopwell.sampling.store import RunStore
 
 TEMPERATURE_K = 300.0
 # kT in kJ/mol from the CODATA molar gas constant (scipy.constants), not from hopwell.

@@ -7,9 +7,9 @@ from openmm import app
 from rdkit import Chem
 from rdkit.Chem import AllChem, rdMolAlign
 
-from hopwell.energy import EnergyEvaluator
 from hopwell.errors import InputError
 from hopwell.systems.builder import BuildOptions, build
+from hopwell.systems.energy import EnergyEvaluator
 from hopwell.systems.solvent import (
     GB_FORCE_GROUP,
     SOLVENT_DIELECTRIC,

@@ -9,8 +9,12 @@ import pytest
 from click.testing import CliRunner
 
 from hopwell.cli import main
-from hopwell.compare import read_reference, running_populations, time_to_tolerance
 from hopwell.errors import InputError
+from hopwell.sampling.compare import (
+    read_reference,
+    running_populations,
+    time_to_tolerance,
+)
 
 BUTANE_STATES = """
 [[state]]
@@ -84,7 +88,7 @@ def test_compare_cli_end_to_end(tmp_path):
     assert "reference gauche: 30.00%" in result.output
 
     # Without a reference: every state on its own, with the runs' interval widths.
-    from hopwell.compare import compare_runs
+    from hopwell.sampling.compare import compare_runs
 
     jobs = [{"dir": r["dir"], "method": r["method"], "repeat": r["repeat"]} for r in comparison["runs"]]
     plain = compare_runs(jobs, comparison["budget_s"], None, 0.01, states)

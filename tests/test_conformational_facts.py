@@ -3,8 +3,8 @@
 import numpy as np
 from rdkit import Chem
 
-from hopwell.scan import relaxed_torsion_scan
 from hopwell.systems.builder import BuildOptions, build
+from hopwell.systems.scan import relaxed_torsion_scan
 
 KJ_PER_KCAL = 4.184
 

@@ -1,4 +1,4 @@
-"""Seed darts (hopwell.darts): exact jumps between seed basins.
+"""Seed darts (hopwell.moves.darts): exact jumps between seed basins.
 
 * The dart is an involution pair: the reverse dart returns to the starting internal coordinates.
 * Darts alone (no flow or one-torsion moves) on the four-atom chain reproduce the scipy
@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import numpy as np
 import torch
-
 from chain_systems import (
     TEMPERATURE_K,
     assign_wells,
@@ -22,11 +21,12 @@ from chain_systems import (
     new_store,
     production_positions,
 )
-from hopwell.darts import build_darts, torsion_distance
-from hopwell.internal import build_zmatrix, cartesian_to_internal
-from hopwell.moves import moving_torsions
-from hopwell.sampler import Budget, Sampler, SamplerSettings
-from hopwell.stats import population_estimate
+
+from hopwell.analysis.stats import population_estimate
+from hopwell.coords.internal import build_zmatrix, cartesian_to_internal
+from hopwell.coords.torsions import moving_torsions
+from hopwell.moves.darts import build_darts, torsion_distance
+from hopwell.sampling.sampler import Budget, Sampler, SamplerSettings
 from hopwell.systems.builder import BuildOptions, build, rotatable_bonds
 
 torch.set_num_threads(1)
@@ -66,7 +66,7 @@ def test_darts_alone_match_quadrature(tmp_path):
     seeds = np.stack([chain_positions_nm(p) for p in (-60.0, 60.0, 180.0)])
     store = new_store(tmp_path / "run", settings)
     sampler = Sampler(chain_mol(), chain_system(), seeds, settings, store, n_walkers=3, platform="Reference")
-    assert sampler.darts.n_centres == 3
+    assert sampler.seed_darts.darts.n_centres == 3
     sampler.run(Budget(samples=6000))
     assert sampler.stats["dart"].accepted > 100
     series = [assign_wells(dihedrals_rad(x)) for x in production_positions(store, 3)]

@@ -1,4 +1,4 @@
-"""Tests of hopwell.guards against RDKit's stereo perception, periodic table and MMFF94."""
+"""Tests of hopwell.coords.guards against RDKit's stereo perception, periodic table and MMFF94."""
 
 import math
 
@@ -8,7 +8,12 @@ import torch
 from rdkit import Chem
 from rdkit.Chem import AllChem, rdMolDescriptors, rdMolTransforms
 
-from hopwell.guards import BONDI_RADII_ANGSTROM, ClashGuard, ProposalGuard, StereoGuard
+from hopwell.coords.guards import (
+    BONDI_RADII_ANGSTROM,
+    ClashGuard,
+    ProposalGuard,
+    StereoGuard,
+)
 
 KT_KCAL_300K = 0.0019872041 * 300.0
 

@@ -3,12 +3,21 @@
 import numpy as np
 import openmm
 import pytest
+from chain_systems import (
+    ANGLE_K,
+    ANGLE_RAD,
+    BOND_K,
+    BOND_NM,
+    KT_KJ,
+    TEMPERATURE_K,
+    chain_positions_nm,
+    chain_system,
+)
 from scipy import integrate
 from scipy.special import gamma
 
-from chain_systems import ANGLE_K, ANGLE_RAD, BOND_K, BOND_NM, KT_KJ, TEMPERATURE_K, chain_positions_nm, chain_system
-from hopwell.energy import EnergyEvaluator, kT_kj
-from hopwell.observables import series_mean
+from hopwell.analysis.observables import series_mean
+from hopwell.systems.energy import EnergyEvaluator, kT_kj
 
 C_KJ_NM4 = 2.0e4
 

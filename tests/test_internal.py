@@ -1,4 +1,4 @@
-"""Tests of hopwell.internal against RDKit, mdtraj and torch autograd."""
+"""Tests of hopwell.coords.internal against RDKit, mdtraj and torch autograd."""
 
 import math
 
@@ -9,7 +9,12 @@ import torch
 from rdkit import Chem
 from rdkit.Chem import AllChem, Lipinski
 
-from hopwell.internal import ZMatrix, build_zmatrix, cartesian_to_internal, internal_to_cartesian
+from hopwell.coords.internal import (
+    ZMatrix,
+    build_zmatrix,
+    cartesian_to_internal,
+    internal_to_cartesian,
+)
 
 SMILES = {
     "water": "O",

@@ -10,9 +10,17 @@ import numpy as np
 import openmm
 import pytest
 from rdkit import Chem
-from rdkit.Chem import AllChem, rdForceFieldHelpers
+from rdkit.Chem import AllChem, rdForceFieldHelpers, rdMolTransforms
 
-from hopwell.systems.mmff import KJ_PER_KCAL, MMFF_FORCE_GROUPS, add_mmff_forces, mmff_properties
+from hopwell.bench.energy import custom_nonbonded_system, geometric_function_system
+from hopwell.systems.builder import BuildOptions, build
+from hopwell.systems.mmff import (
+    KJ_PER_KCAL,
+    MMFF_FORCE_GROUPS,
+    add_mmff_forces,
+    mmff_properties,
+)
+from hopwell.systems.solvent import GB_FORCE_GROUP
 
 # 32 molecules covering the chemistry the issue names: aromatic heterocycles, amides,
 # sulfonamides, halogens, nitro, carboxylate and ammonium, conjugated and strained rings,
@@ -106,3 +114,84 @@ def test_variants_and_dielectrics_differ():
             energies[variant, dielectric] = context.getState(getEnergy=True).getPotentialEnergy()._value
     assert abs(energies["MMFF94", "constant"] - energies["MMFF94s", "constant"]) > 1e-3
     assert abs(energies["MMFF94", "constant"] - energies["MMFF94", "distance"]) > 1e-3
+
+
+def _stretch_bend_only_kcal(mol, variant):
+    props = mmff_properties(Chem.Mol(mol), variant)
+    for switch in TERM_SWITCH.values():
+        getattr(props, f"SetMMFF{switch}Term")(switch == "StretchBend")
+    return rdForceFieldHelpers.MMFFGetMoleculeForceField(mol, props).CalcEnergy()
+
+
+def test_straight_angle_gives_finite_stretch_bend():
+    # The stretch-bend term is written on coordinates with acos of the bond-vector cosine,
+    # clipped as RDKit's clipToOne does (Halgren 1996 form, RDKit StretchBend.cpp). A flat
+    # drawing of N-methylacetamide puts sp3 carbons' hydrogens at exactly 180 degrees, where
+    # an unclipped acos has no finite derivative.
+    mol = Chem.AddHs(Chem.MolFromSmiles("CC(=O)NC"))
+    AllChem.Compute2DCoords(mol)
+    props = mmff_properties(mol, "MMFF94")
+    context = _openmm_context(mol, props)
+    group = MMFF_FORCE_GROUPS["stretch_bend"]
+    state = context.getState(getEnergy=True, getForces=True, groups={group})
+    conf = mol.GetConformer()
+    straight = [
+        (i, j, k) for j in range(mol.GetNumAtoms())
+        for i in range(mol.GetNumAtoms()) for k in range(i + 1, mol.GetNumAtoms())
+        if mol.GetBondBetweenAtoms(i, j) and mol.GetBondBetweenAtoms(k, j)
+        and abs(rdMolTransforms.GetAngleRad(conf, i, j, k) - np.pi) < 1e-12
+    ]
+    assert straight, "the drawing should hold an exactly straight angle"
+    assert np.isfinite(state.getForces(asNumpy=True)._value).all()
+    ours = state.getPotentialEnergy()._value / KJ_PER_KCAL
+    assert _close(ours, _stretch_bend_only_kcal(mol, "MMFF94"))
+
+
+@pytest.mark.parametrize("dielectric", ["constant", "distance"])
+def test_benchmark_constructions_match_rdkit(dielectric):
+    # hopwell.bench.energy times two other ways of writing the same energy; its comparison is
+    # only fair if each reproduces RDKit's MMFF94 total (reference as above). Charged and
+    # zwitterionic molecules exercise the 1-4 scaling of the electrostatic exclusions.
+    failures = []
+    for k, smiles in enumerate(["CC(=O)NC", "[NH3+]CC(=O)[O-]", "NS(=O)(=O)c1ccc(C)cc1", "C#CC1CC1"]):
+        mol = _molecule(smiles, seed=300 + k)
+        props = mmff_properties(mol, "MMFF94", dielectric)
+        system = openmm.System()
+        for atom in mol.GetAtoms():
+            system.addParticle(atom.GetMass())
+        add_mmff_forces(system, mol, props)
+        ref = rdForceFieldHelpers.MMFFGetMoleculeForceField(mol, props).CalcEnergy()
+        for name, other in {
+            "angle/dihedral functions": geometric_function_system(system),
+            "CustomNonbondedForce": custom_nonbonded_system(system, mol, props),
+        }.items():
+            context = openmm.Context(other, openmm.VerletIntegrator(0.001),
+                                     openmm.Platform.getPlatformByName("Reference"))
+            context.setPositions(mol.GetConformer().GetPositions() * 0.1)
+            ours = context.getState(getEnergy=True).getPotentialEnergy()._value / KJ_PER_KCAL
+            if not _close(ours, ref):
+                failures.append(f"{smiles} {name}: {ours} vs {ref}")
+    assert not failures, failures
+
+
+def test_obc2_adds_only_its_own_group():
+    # OBC2 (GBSAOBCForce, group 7) composes with the MMFF forces: groups 0-6 of a built OBC2
+    # system still give RDKit's vacuum MMFF94 energy (reference as above), and the GB group
+    # carries the (negative, Onufriev et al. 2004) solvation of a polar molecule.
+    molsys = build("NCC(=O)OC", BuildOptions(solvent="obc2", n_seeds=1))
+    mol = Chem.Mol(molsys.mol)
+    mol.RemoveAllConformers()
+    conf = Chem.Conformer(mol.GetNumAtoms())
+    for i, xyz in enumerate(molsys.seeds_nm[0] * 10.0):
+        conf.SetAtomPosition(i, xyz.tolist())
+    mol.AddConformer(conf)
+    ref = rdForceFieldHelpers.MMFFGetMoleculeForceField(mol, mmff_properties(mol, "MMFF94")).CalcEnergy()
+    context = openmm.Context(molsys.system, openmm.VerletIntegrator(0.001),
+                             openmm.Platform.getPlatformByName("Reference"))
+    context.setPositions(molsys.seeds_nm[0])
+    mmff_groups = set(MMFF_FORCE_GROUPS.values())
+    ours = context.getState(getEnergy=True, groups=mmff_groups).getPotentialEnergy()._value
+    assert GB_FORCE_GROUP not in mmff_groups
+    assert _close(ours / KJ_PER_KCAL, ref)
+    gb = context.getState(getEnergy=True, groups={GB_FORCE_GROUP}).getPotentialEnergy()._value
+    assert gb < 0.0

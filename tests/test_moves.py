@@ -1,4 +1,4 @@
-"""The flow move's pieces (hopwell.moves): which torsions the flow redraws, its context, its density.
+"""The flow move's pieces (hopwell.coords.torsions, hopwell.flow.torsion): which torsions the flow redraws, its context, its density.
 
 * Stiff rows are the partial double bonds: amide and ester C-X bonds, not C-C single bonds
   (common-practice chemistry); on Ace-Ala-NMe the flow's torsions are then exactly mdtraj's
@@ -17,9 +17,14 @@ import pytest
 import torch
 from scipy import integrate
 
-from hopwell.darts import rotatable_rows
-from hopwell.internal import build_zmatrix
-from hopwell.moves import TorsionFlow, context_angles, moving_torsions, stiff_rows
+from hopwell.coords.internal import build_zmatrix
+from hopwell.coords.torsions import (
+    context_angles,
+    moving_torsions,
+    rotatable_rows,
+    stiff_rows,
+)
+from hopwell.flow.torsion import TorsionFlow
 from hopwell.systems.builder import BuildOptions, build, rotatable_bonds
 
 torch.set_num_threads(1)

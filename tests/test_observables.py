@@ -4,7 +4,7 @@ import mdtraj as md
 import numpy as np
 import pytest
 
-from hopwell.observables import j3_hn_ha, series_mean
+from hopwell.analysis.observables import j3_hn_ha, series_mean
 from hopwell.systems.builder import build
 
 

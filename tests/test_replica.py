@@ -17,8 +17,6 @@ import signal
 
 import numpy as np
 import pytest
-from scipy import constants
-
 from chain_systems import (
     TEMPERATURE_K,
     assign_wells,
@@ -30,13 +28,16 @@ from chain_systems import (
     new_store,
     production_positions,
 )
+from scipy import constants
 from test_resume import _hopwell, _kill_when, _spawn, _wait_for_cycle
 from test_sampler_exact import plain_langevin
-from hopwell.replica import ReplicaSampler, exchange_log_acceptance, geometric_ladder, neighbour_pairs
-from hopwell.run import load_sampler, resume_run, start_run
-from hopwell.sampler import Budget, SamplerSettings
-from hopwell.stats import population_estimate
-from hopwell.store import MOVE_LANGEVIN, RunStore
+
+from hopwell.analysis.stats import population_estimate
+from hopwell.moves.exchange import exchange_log_acceptance, neighbour_pairs
+from hopwell.sampling.replica import ReplicaSampler, geometric_ladder
+from hopwell.sampling.run import load_sampler, resume_run, start_run
+from hopwell.sampling.sampler import Budget, SamplerSettings
+from hopwell.sampling.store import MOVE_LANGEVIN, RunStore
 from hopwell.systems.builder import BuildOptions
 
 

@@ -12,9 +12,13 @@ import pytest
 from click.testing import CliRunner
 from PIL import Image
 
+from hopwell.analysis.production import (
+    ACCEPTANCE_WINDOWS,
+    CycleCounts,
+    acceptance_over_time,
+)
 from hopwell.cli import main
-from hopwell.report import ACCEPTANCE_WINDOWS, CycleCounts, acceptance_over_time
-from hopwell.store import MOVE_FLOW, RunStore
+from hopwell.sampling.store import MOVE_FLOW, RunStore
 
 WALKERS = 3
 TRAINING_CYCLES = 10

@@ -1,6 +1,6 @@
 """Crash safety of a run directory: ``kill -9`` at any instant, clean stops, and resume.
 
-The contract (see :mod:`hopwell.store`): every file is written atomically, a chunk is written
+The contract (see :mod:`hopwell.sampling.store`): every file is written atomically, a chunk is written
 before the checkpoint that counts it, and ``hopwell resume DIR`` drops the chunks no checkpoint
 counts and redoes that work. Whatever happens, the finished run directory must hold every
 (cycle, walker, move) record exactly once, its chunks must all load, and the checkpoint's
@@ -32,7 +32,7 @@ import pytest
 
 from hopwell.atomic import atomic_write_bytes
 from hopwell.errors import InputError
-from hopwell.store import MOVE_FLOW, MOVE_LANGEVIN, RunStore
+from hopwell.sampling.store import MOVE_FLOW, MOVE_LANGEVIN, RunStore
 
 BIN = Path(sys.executable).with_name("hopwell")
 HOPWELL = [str(BIN)] if BIN.exists() else [sys.executable, "-m", "hopwell.cli"]
@@ -398,7 +398,7 @@ def _strip_to_start(run_dir: Path) -> None:
 
 
 def test_resume_before_checkpoint_zero_starts_from_the_beginning(finished_run, tmp_path):
-    from hopwell.run import resume_run
+    from hopwell.sampling.run import resume_run
 
     run_dir = _copy_run(finished_run, tmp_path / "run")
     _strip_to_start(run_dir)
@@ -409,7 +409,7 @@ def test_resume_before_checkpoint_zero_starts_from_the_beginning(finished_run, t
 
 def test_resume_refuses_chunks_without_a_checkpoint(finished_run, tmp_path):
     """Chunks but no state.npz cannot come from a crash; resume must not guess (nor delete)."""
-    from hopwell.run import resume_run
+    from hopwell.sampling.run import resume_run
 
     run_dir = _copy_run(finished_run, tmp_path / "run")
     (run_dir / "state.npz").unlink()
@@ -420,7 +420,7 @@ def test_resume_refuses_chunks_without_a_checkpoint(finished_run, tmp_path):
 
 
 def test_resume_of_a_finished_run_changes_nothing(finished_run, tmp_path):
-    from hopwell.run import resume_run
+    from hopwell.sampling.run import resume_run
 
     run_dir = _copy_run(finished_run, tmp_path / "run")
     before = _state(run_dir)
@@ -444,7 +444,7 @@ def test_crash_while_rewriting_the_flow_checkpoint_keeps_the_run_resumable(finis
     """A flush at the checkpoint's own cycle rewrites the flow file the checkpoint names."""
     import torch
 
-    from hopwell.run import load_sampler
+    from hopwell.sampling.run import load_sampler
 
     run_dir = _copy_run(finished_run, tmp_path / "run")
     sampler = load_sampler(run_dir)
@@ -471,8 +471,8 @@ def test_crash_while_rewriting_the_flow_checkpoint_keeps_the_run_resumable(finis
 
 def test_crash_between_chunk_and_checkpoint_drops_the_uncounted_chunk(finished_run, tmp_path,
                                                                       monkeypatch):
-    from hopwell.run import load_sampler
-    from hopwell.sampler import Budget
+    from hopwell.sampling.run import load_sampler
+    from hopwell.sampling.sampler import Budget
 
     run_dir = _copy_run(finished_run, tmp_path / "run")
     sampler = load_sampler(run_dir)
@@ -588,7 +588,7 @@ def test_resume_is_refused_while_another_process_samples_into_the_directory(fini
     """
     run_dir = _copy_run(finished_run, tmp_path / "run")
     holder = subprocess.Popen(
-        [sys.executable, "-c", "import sys, time\nfrom hopwell.store import RunStore\n"
+        [sys.executable, "-c", "import sys, time\nfrom hopwell.sampling.store import RunStore\n"
          f"with RunStore({str(run_dir)!r}).exclusive():\n    print('held', flush=True)\n"
          "    time.sleep(120)\n"],
         stdout=subprocess.PIPE, text=True, env=ENV)
@@ -611,8 +611,8 @@ def test_resume_is_refused_while_another_process_samples_into_the_directory(fini
 
 def test_a_second_start_into_a_directory_being_started_is_refused(tmp_path):
     """Before run.toml exists only the lock stops two starts from writing one directory."""
-    from hopwell.run import start_run
-    from hopwell.sampler import Budget, SamplerSettings
+    from hopwell.sampling.run import start_run
+    from hopwell.sampling.sampler import Budget, SamplerSettings
     from hopwell.systems.builder import BuildOptions
 
     with RunStore(tmp_path / "run").exclusive():

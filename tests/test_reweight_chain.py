@@ -18,10 +18,6 @@ import mdtraj
 import numpy as np
 import pytest
 import torch
-from rdkit import Chem
-from scipy import constants, integrate, signal
-from scipy import stats as scipy_stats
-
 from chain_systems import (
     TEMPERATURE_K,
     chain_mol,
@@ -31,11 +27,15 @@ from chain_systems import (
     torsion_energy_kj,
     well_edges_rad,
 )
+from rdkit import Chem
+from scipy import constants, integrate, signal
+from scipy import stats as scipy_stats
+
+from hopwell.analysis.reweight import reweighted_populations, temperature_log_weights
+from hopwell.analysis.summary import analyse
 from hopwell.errors import InputError
-from hopwell.report import analyse
-from hopwell.reweight import reweighted_populations, temperature_log_weights
-from hopwell.sampler import Budget, Sampler, SamplerSettings
-from hopwell.store import RunStore
+from hopwell.sampling.sampler import Budget, Sampler, SamplerSettings
+from hopwell.sampling.store import RunStore
 
 torch.set_num_threads(1)
 

@@ -13,9 +13,6 @@ import numpy as np
 import openmm
 import pytest
 import torch
-from openmm import unit
-from scipy import integrate
-
 from chain_systems import (
     ANGLE_RAD,
     BOND_NM,
@@ -34,10 +31,13 @@ from chain_systems import (
     training_positions,
     well_edges_rad,
 )
-from hopwell.guards import ProposalGuard
-from hopwell.internal import cartesian_to_internal
-from hopwell.sampler import Budget, Sampler, SamplerSettings
-from hopwell.stats import population_estimate
+from openmm import unit
+from scipy import integrate
+
+from hopwell.analysis.stats import population_estimate
+from hopwell.coords.guards import ProposalGuard
+from hopwell.coords.internal import cartesian_to_internal
+from hopwell.sampling.sampler import Budget, Sampler, SamplerSettings
 from hopwell.systems.builder import BuildOptions, build
 
 torch.set_num_threads(1)
@@ -161,11 +161,11 @@ def test_flow_moves_alone_match_quadrature(tmp_path):
     # exp(-V/kT) q(phi) over each well; the run must tell them apart from the exact ones.
     # The flow is untrained (its base alone), so q does not depend on its context (bond
     # angles); any walker's serve.
-    context = sampler.conditioning(cartesian_to_internal(sampler.zmat, torch.as_tensor(seeds[:1])))[0]
+    context = sampler.trainer.conditioning(cartesian_to_internal(sampler.zmat, torch.as_tensor(seeds[:1])))[0]
 
     def log_q(phi):
         with torch.no_grad():
-            return float(sampler.flow.log_prob(torch.tensor([[phi]], dtype=torch.float64), context)[0])
+            return float(sampler.trainer.flow.log_prob(torch.tensor([[phi]], dtype=torch.float64), context)[0])
 
     edges = well_edges_rad()
     bounds = [(edges[0], edges[1]), (edges[1], edges[2]), (edges[2], edges[0] + 2 * np.pi)]

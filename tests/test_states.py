@@ -9,7 +9,7 @@ from click.testing import CliRunner
 from rdkit import Chem
 from rdkit.Chem import AllChem
 
-from hopwell import states as st
+from hopwell.analysis import states as st
 from hopwell.cli import main
 
 

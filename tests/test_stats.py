@@ -1,11 +1,11 @@
-"""Tests of hopwell.stats against references outside hopwell."""
+"""Tests of hopwell.analysis.stats against references outside hopwell."""
 
 import numpy as np
 import pytest
 from pymbar import timeseries as pymbar_timeseries
 from scipy import constants, signal, stats
 
-from hopwell.stats import (
+from hopwell.analysis.stats import (
     BLOCK_FACTOR,
     blockwise_importance_populations,
     count_transitions,

@@ -14,7 +14,7 @@ from hopwell.bench.umbrella import (
     state_ranges_rad,
     umbrella_populations,
 )
-from hopwell.energy import EnergyEvaluator, kT_kj
+from hopwell.systems.energy import EnergyEvaluator, kT_kj
 
 TEMPERATURE_K = 300.0
 # Three unequal wells near -60, 60 and 180 degrees, with barriers of about 10 kJ/mol (4 kT)

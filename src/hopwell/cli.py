@@ -123,7 +123,7 @@ def build(output, as_json, **kwargs):
     Example:
       hopwell build "CC(=O)N[C@@H](C)C(=O)NC" --solvent obc2 --seeds 50
     """
-    from hopwell.energy import EnergyEvaluator
+    from hopwell.systems.energy import EnergyEvaluator
 
     molsys = _build(**kwargs)
     summary = molsys.summary()
@@ -155,7 +155,7 @@ def energy(as_json, **kwargs):
     Example:
       hopwell energy conformers.sdf --forcefield mmff94s --json
     """
-    from hopwell.energy import EnergyEvaluator
+    from hopwell.systems.energy import EnergyEvaluator
 
     molsys = _build(**kwargs)
     positions = molsys.input_positions_nm if molsys.mol.GetNumConformers() else molsys.seeds_nm
@@ -202,7 +202,7 @@ def _sampler_options(fn):
 
 
 def _budget(hours, samples):
-    from hopwell.sampler import Budget
+    from hopwell.sampling.sampler import Budget
 
     if hours is None and samples is None:
         raise InputError("give a budget: --hours H or --samples N")
@@ -217,7 +217,7 @@ def _narrow_enough(width_points):
         return None
     if width_points <= 0:
         raise InputError("--until-width must be positive (percentage points)")
-    from hopwell.report import analyse
+    from hopwell.analysis.summary import analyse
 
     def check(sampler):
         if not sampler.production or sampler.next_chunk % 20:
@@ -322,8 +322,8 @@ def run(run_dir, hours, samples, temperature_K, walkers, training_cycles, langev
     """
     import torch
 
-    from hopwell.run import start_run
-    from hopwell.sampler import SamplerSettings
+    from hopwell.sampling.run import start_run
+    from hopwell.sampling.sampler import SamplerSettings
     from hopwell.systems.builder import BuildOptions
 
     budget = _budget(hours, samples)
@@ -365,7 +365,7 @@ def resume(run_dir, hours, samples):
     """
     import torch
 
-    from hopwell.run import resume_run, saved_budget
+    from hopwell.sampling.run import resume_run, saved_budget
 
     budget = saved_budget(Path(run_dir)) if hours is None and samples is None else _budget(hours, samples)
     torch.set_num_threads(1)
@@ -395,7 +395,8 @@ def report(run_dir, as_json, reweight_temperature, reweight_solvent, reweight_fo
       hopwell report amide --reweight-solvent obc2
       hopwell report amide --states systems/demo_amide_states.toml
     """
-    from hopwell.report import analyse, format_table, public, write_report
+    from hopwell.analysis.summary import analyse, public
+    from hopwell.report import format_table, write_report
 
     reweight = {k: v for k, v in (("temperature_K", reweight_temperature), ("solvent", reweight_solvent),
                                   ("forcefield", reweight_forcefield)) if v is not None}
@@ -419,7 +420,7 @@ def status(run_dir, as_json):
     Example:
       hopwell status dipeptide
     """
-    from hopwell.store import RunStore
+    from hopwell.sampling.store import RunStore
 
     store = RunStore.open(Path(run_dir))
     state = store.read_state()
@@ -442,6 +443,8 @@ def status(run_dir, as_json):
         "flow_acceptance_production": rate("production"),
         "one_torsion_acceptance": rate("single"),
         "dart_acceptance": rate("dart") if "dart" in stats else None,
+        "langevin_rolled_back": stats["langevin"].get("rolled_back") if "langevin" in stats else None,
+        "states_failing_guard": stats["langevin"].get("outside_guard") if "langevin" in stats else None,
         "exchange_acceptance": (sum(stats["exchange"]["accepted"]) / sum(stats["exchange"]["attempted"])
                                 if "exchange" in stats and sum(stats["exchange"]["attempted"]) else None),
         "budget": store.config().get("budget", {}),
@@ -463,7 +466,7 @@ def status(run_dir, as_json):
 @click.option("--repeats", type=int, default=2, show_default=True, help="Runs per method (seeds differ).")
 @click.option("--methods", default="flow,md,remd", show_default=True, help="Comma-separated methods.")
 @click.option("--reference", "reference_file", type=click.Path(dir_okay=False), default=None,
-              help="TOML of reference populations (see hopwell.compare).")
+              help="TOML of reference populations (see hopwell.sampling.compare).")
 @click.option("--states", "states_file", type=click.Path(dir_okay=False), default=None,
               help="States TOML file [default: backbone regions or automatic torsion wells].")
 @click.option("--tolerance", type=float, default=1.0, show_default=True,
@@ -482,8 +485,8 @@ def compare(out_dir, budget_min, repeats, methods, reference_file, states_file, 
       hopwell compare systems/ace_ala_nme.pdb -o bench --budget 20 \\
           --reference systems/ace_ala_nme_reference.toml
     """
-    from hopwell import compare as cmp
-    from hopwell.sampler import SamplerSettings
+    from hopwell.sampling import compare as cmp
+    from hopwell.sampling.sampler import SamplerSettings
     from hopwell.systems.builder import BuildOptions, build
 
     chosen = list(dict.fromkeys(m.strip() for m in methods.split(",") if m.strip()))
@@ -524,9 +527,10 @@ def demo(run_dir, minutes):
     """
     import torch
 
-    from hopwell.report import analyse, format_table, write_report
-    from hopwell.run import start_run
-    from hopwell.sampler import Budget, SamplerSettings
+    from hopwell.analysis.summary import analyse
+    from hopwell.report import format_table, write_report
+    from hopwell.sampling.run import start_run
+    from hopwell.sampling.sampler import Budget, SamplerSettings
     from hopwell.systems.builder import BuildOptions
 
     spec = str(_systems_dir() / "demo_amide.sdf")

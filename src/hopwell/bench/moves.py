@@ -3,7 +3,7 @@
 Run ``python -m hopwell.bench.moves systems/ace_ala_nme.pdb --minutes 5``. Each variant is a
 full run (training for 30% of the budget, then production) into a temporary directory; the table
 gives acceptance by move type in production, proposals per second, effective samples per second
-(:func:`hopwell.report.analyse`) and the phi > 0 population where the molecule is a dipeptide.
+(:func:`hopwell.analysis.summary.analyse`) and the phi > 0 population where the molecule is a dipeptide.
 Variants run one after another, so their ratios share the machine's load.
 """
 
@@ -17,10 +17,10 @@ from pathlib import Path
 
 import torch
 
+from hopwell.analysis.summary import analyse
 from hopwell.bench import print_table
-from hopwell.report import analyse
-from hopwell.run import start_run
-from hopwell.sampler import Budget, SamplerSettings
+from hopwell.sampling.run import start_run
+from hopwell.sampling.sampler import Budget, SamplerSettings
 from hopwell.systems.builder import BuildOptions
 
 # Defaults (flow over rotatable single-bond torsions given their bond angles, with darts);

@@ -13,9 +13,9 @@ import time
 import mdtraj as md
 import numpy as np
 
-from hopwell import states as st
-from hopwell.energy import EnergyEvaluator
+from hopwell.analysis import states as st
 from hopwell.systems.builder import BuildOptions, build
+from hopwell.systems.energy import EnergyEvaluator
 
 
 def main(argv=None) -> None:

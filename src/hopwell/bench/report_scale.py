@@ -15,9 +15,10 @@ from pathlib import Path
 
 import numpy as np
 
-from hopwell.report import analyse, write_report
-from hopwell.run import _molecule_sdf, _topology_pdb
-from hopwell.store import MOVE_FLOW, MOVE_LANGEVIN, RunStore
+from hopwell.analysis.summary import analyse
+from hopwell.report import write_report
+from hopwell.sampling.run import _molecule_sdf, _topology_pdb
+from hopwell.sampling.store import MOVE_FLOW, MOVE_LANGEVIN, RunStore
 from hopwell.systems.builder import BuildOptions, build
 
 # 54 atoms, 11 rotatable bonds (a made-up ether amide, for timing only).

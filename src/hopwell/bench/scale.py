@@ -30,9 +30,9 @@ def measure(spec: str, seconds: float, solvent: str) -> dict:
     """One run in this process; returns the table row."""
     import torch
 
-    from hopwell.report import analyse
-    from hopwell.run import start_run
-    from hopwell.sampler import Budget, SamplerSettings
+    from hopwell.analysis.summary import analyse
+    from hopwell.sampling.run import start_run
+    from hopwell.sampling.sampler import Budget, SamplerSettings
     from hopwell.systems.builder import BuildOptions, build
 
     torch.set_num_threads(1)

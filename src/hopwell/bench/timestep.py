@@ -14,9 +14,9 @@ import time
 
 import numpy as np
 
-from hopwell.energy import EnergyEvaluator
-from hopwell.observables import series_mean
+from hopwell.analysis.observables import series_mean
 from hopwell.systems.builder import BuildOptions, build
+from hopwell.systems.energy import EnergyEvaluator
 
 SETTINGS = (("langevin", 0.5), ("langevin", 1.0), ("langevin", 2.0), ("ghmc", 1.0))
 

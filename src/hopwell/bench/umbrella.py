@@ -51,9 +51,14 @@ from pymbar import MBAR, timeseries
 from rdkit import Chem
 
 from hopwell.atomic import atomic_write_bytes
-from hopwell.energy import DEFAULT_FRICTION_PER_PS, DEFAULT_TIMESTEP_PS, EnergyEvaluator, kT_kj
 from hopwell.errors import InputError
 from hopwell.systems.builder import FORCEFIELDS, SOLVENTS, BuildOptions, build
+from hopwell.systems.energy import (
+    DEFAULT_FRICTION_PER_PS,
+    DEFAULT_TIMESTEP_PS,
+    EnergyEvaluator,
+    kT_kj,
+)
 
 # 95% interval half-width in standard errors (normal approximation).
 Z95 = 1.96

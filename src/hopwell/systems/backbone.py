@@ -1,6 +1,6 @@
 """Peptide backbone regions, and seeds: one minimized structure per region and residue.
 
-The regions (phi, psi in degrees) are tabulated in :mod:`hopwell.states`.
+The regions (phi, psi in degrees) are tabulated in :mod:`hopwell.analysis.states`.
 
 A walker only samples basins it is shown or can reach (the method's known limit), and a peptide
 PDB usually holds one structure. The backbone regions of the trade are known in advance, so each
@@ -10,7 +10,7 @@ the torsions restrained there and then without restraint, and every structure wh
 minimum relaxes into a neighbouring region and adds nothing.
 
 Region centres (degrees) are typical minimum positions of alanine dipeptide, common practice
-from memory; only their membership in the regions of :mod:`hopwell.states` matters here.
+from memory; only their membership in the regions of :mod:`hopwell.analysis.states` matters here.
 """
 
 from __future__ import annotations

@@ -178,7 +178,10 @@ def _read_smiles(smiles: str, pick_isomer: bool) -> ParsedInput:
                 f"SMILES leaves stereo unspecified at {', '.join(open_stereo)};"
                 " write it in the SMILES or pass --pick-isomer to take one isomer"
             )
-        from rdkit.Chem.EnumerateStereoisomers import EnumerateStereoisomers, StereoEnumerationOptions
+        from rdkit.Chem.EnumerateStereoisomers import (
+            EnumerateStereoisomers,
+            StereoEnumerationOptions,
+        )
 
         options = StereoEnumerationOptions(onlyUnassigned=True, unique=True, tryEmbedding=False)
         mol = next(iter(EnumerateStereoisomers(mol, options=options)))

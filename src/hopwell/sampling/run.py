@@ -12,12 +12,20 @@ from openmm import app
 from rdkit import Chem
 
 from hopwell.errors import InputError
-from hopwell.replica import ReplicaSampler
-from hopwell.sampler import Budget, Sampler, SamplerSettings
-from hopwell.store import RunStore
-from hopwell.systems.builder import BuildOptions, MolecularSystem, build, conformer_positions_nm
+from hopwell.sampling.replica import ReplicaSampler
+from hopwell.sampling.sampler import Budget, Sampler, SamplerSettings
+from hopwell.sampling.store import RunStore
+from hopwell.systems.builder import (
+    BuildOptions,
+    MolecularSystem,
+    build,
+    conformer_positions_nm,
+)
 
-
+# The run directory's layout version, written to run.toml as ``format``. Runs written before it
+# existed carry none and are format 1 (the same files); a newer format is refused.
+FORMAT_VERSION = 2
+READABLE_FORMATS = (1, 2)
 # Settings that runs made before they existed did without: such a run resumes as it began.
 LEGACY_SETTINGS = {"flow_torsions": "all", "darts_per_cycle": 0, "flow_stiff_torsions": True,
                    "flow_context": False, "context_noise": 0.0, "weight_decay": 0.0}
@@ -79,6 +87,7 @@ def start_run(spec: str, out_dir: Path, build_options: BuildOptions, settings: S
     molsys = build(spec, build_options)
     walkers = _walkers(settings, n_walkers, len(molsys.seeds_nm))
     config = {
+        "format": FORMAT_VERSION,
         "input": spec,
         "build": {k: v for k, v in asdict(build_options).items()},
         "sampler": asdict(settings),
@@ -115,6 +124,10 @@ def load_sampler(run_dir: Path) -> Sampler:
         raise InputError(f"{run_dir}: sample chunks but no checkpoint (state.npz); the run"
                          " directory is damaged")
     config = store.config()
+    version = config.get("format", 1)
+    if version not in READABLE_FORMATS:
+        raise InputError(f"{run_dir}: run directory format {version}; this hopwell reads formats"
+                         f" {READABLE_FORMATS[0]}-{READABLE_FORMATS[-1]}")
     names = {f.name for f in fields(SamplerSettings)}
     saved = {**LEGACY_SETTINGS, **config["sampler"]}
     settings = SamplerSettings(**{k: v for k, v in saved.items() if k in names})

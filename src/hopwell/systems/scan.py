@@ -7,7 +7,7 @@ import copy
 import numpy as np
 import openmm
 
-from hopwell.energy import EnergyEvaluator
+from hopwell.systems.energy import EnergyEvaluator
 
 RESTRAINT_GROUP = 31
 # Stiff enough that the minimized dihedral sits within ~0.1 degree of its target for the

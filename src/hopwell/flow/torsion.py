@@ -1,48 +1,13 @@
-"""Torsion-space flow proposals: new principal torsions, everything else kept.
+"""The torsion flow: a trainable density over the torsions the non-local moves redraw.
 
-The sampler's non-local move draws the principal torsions about rotatable bonds at once from a
-normalizing flow q on the torus, and keeps the walker's bonds, angles, ring torsions and
-torsion offsets (so methyl hydrogens and branches turn rigidly with their principal torsion).
-Given the kept coordinates r, this is an independence proposal for the torsions t, and the
-Metropolis-Hastings ratio for the target p(t | r) ~ exp(-u(x(r, t))) J(r) is::
-
-    alpha = min(1, exp(-u(x') + u(x)) * q(t) / q(t'))
-
-J = prod r^2 sin(theta) depends on bonds and angles only, so it cancels exactly. The move leaves
-p(t | r) invariant and hence the Boltzmann distribution (a Metropolis-within-Gibbs step). Whole
-conformations (bonds and angles too) proposed independently were measured here to give zero
-acceptance for n-butane after 40 training cycles: product densities over stiff coordinates put
-most proposals many kT uphill.
-
-Two choices raise the flow move's acceptance; both were measured offline on 7416 production
-states of Ace-Ala-NMe in vacuum (flows fitted to the first 70% in time, acceptance of 32
-proposals from each of 150 later states):
-
-- Torsions about partial double bonds (amide C-N and the like, :func:`stiff_rows`) are left
-  out of the flow and turned by the one-torsion moves and seed darts only; where a molecule
-  has no other rotatable bond, the flow keeps them. Each amide torsion redrawn alone was
-  accepted 55-59% of the time, and all four rotatable torsions from one flow 19%, against 30%
-  for phi and psi alone: the acceptance of a joint independence proposal falls roughly as the
-  product of its parts'.
-- The flow is conditioned (zuko's ``context``) on the bond angles at its torsions' central
-  atoms (:func:`context_angles`) and on the moving torsions it leaves out: it models
-  p(t | c), not the marginal p(t). Backbone angles differ between basins; they raised phi-psi
-  acceptance from 30% to 37%. All kept coordinates as context (56 inputs) overfitted
-  (held-out log-likelihood -4.7 against -0.46 unconditional), so the networks see the few
-  angles, with Gaussian noise added to them during training. The left-out torsions enter as
-  (cos, sin), because an amide's cis/trans state changes which positions of its neighbours
-  clash. Measured on the demo molecule (N-benzyl-N-methylacetamide, 4-minute demo runs): with
-  the angles alone as context, the side-chain proposals were accepted 6-9% of the time and
-  then 0 times in the last 150 of 1000 cycles (65-70% clashed, the rest a median 800-1100
-  kJ/mol uphill); with the amide torsion added, 6.8% over the production phase, still with
-  stretches of zero. The context is the same in x and x', so q(t | c) enters the ratio exactly
-  as above.
-
-The flow is zuko's neural circular spline flow (circular rational-quadratic splines, Rezende
-et al. 2020; Durkan et al. 2019) with its uniform base replaced by a physics-informed one: a
-von Mises mixture per torsion placed on the observed torsion values plus a near-uniform floor
-component (weight ``FLOOR_WEIGHT``) so that no angle has vanishing density. Everything runs in
-float64 so that log q enters acceptance ratios exactly.
+:class:`TorsionFlow` is zuko's neural circular spline flow (circular rational-quadratic splines,
+Rezende et al. 2020; Durkan et al. 2019) with its uniform base replaced by a physics-informed
+one: a von Mises mixture per torsion placed on the observed torsion values plus a near-uniform
+floor component (weight ``FLOOR_WEIGHT``) so that no angle has vanishing density. The base's
+one-torsion marginals serve the one-torsion moves (:mod:`hopwell.moves.one_torsion`), the flow
+the flow block (:mod:`hopwell.moves.flow_block`, whose docstring gives the measured reasons for
+which torsions it covers and what it is conditioned on). Everything runs in float64 so that
+log q enters acceptance ratios exactly.
 """
 
 from __future__ import annotations
@@ -50,76 +15,15 @@ from __future__ import annotations
 import numpy as np
 import torch
 import zuko
-from rdkit import Chem
 from torch.distributions import Categorical, Independent, MixtureSameFamily, VonMises
 from zuko.lazy import UnconditionalDistribution
 
-from hopwell.flow.base import fit_von_mises_mixture
-from hopwell.internal import ZMatrix
+from hopwell.flow.von_mises import fit_von_mises_mixture
 
 FLOOR_WEIGHT = 0.05
 FLOOR_KAPPA = 1e-6  # von Mises with this concentration is uniform to within 1e-6 in density
 N_COMPONENTS = 3
 MAX_KAPPA = 25.0  # width 1/sqrt(kappa) >= 0.2 rad: a base wider than any torsion well
-
-
-def moving_torsions(zmat: ZMatrix, mol: Chem.Mol) -> np.ndarray:
-    """Indices of the torsion rows the flow proposes: proper principal torsions, acyclic bonds.
-
-    A row qualifies when its torsion is a proper dihedral (its reference atom bonded to the
-    angle reference, t-a-b-atom), it is principal (offsets follow it), the bond a-b is not in
-    a ring, and every other neighbour of b is placed about the same bond a-b (so the move is a
-    rigid rotation of b's substituents). Improper-style rows (reference bonded to b) place an atom around its own centre and
-    behave like angles; moving them was measured to raise energies by hundreds of kJ/mol.
-
-    Returns
-    -------
-    numpy.ndarray of int, shape ``(n_moving,)``
-        Positions in the Z-matrix torsion array (row ``k`` places atom ``order[k + 3]``).
-    """
-    placed_about = {}  # atom -> (bond_ref, angle_ref) of its row; None for the first three
-    for row, atom in enumerate(zmat.order):
-        placed_about[int(atom)] = None if row < 3 else (int(zmat.bond_ref[row]), int(zmat.angle_ref[row]))
-    rows = []
-    for k in np.flatnonzero(zmat.is_principal):
-        row = k + 3
-        b, a, t = (int(zmat.bond_ref[row]), int(zmat.angle_ref[row]), int(zmat.torsion_ref[row]))
-        proper = mol.GetBondBetweenAtoms(t, a) is not None
-        # A rigid rotation about a-b turns every other neighbour of b with it; a neighbour
-        # placed otherwise (one of the first three atoms) would be left behind, and the
-        # "torsion" would bend the angles at b instead.
-        rigid = all(placed_about[n.GetIdx()] == (b, a)
-                    for n in mol.GetAtomWithIdx(b).GetNeighbors() if n.GetIdx() != a)
-        if proper and rigid and not mol.GetBondBetweenAtoms(b, a).IsInRing():
-            rows.append(int(k))
-    return np.array(rows, dtype=int)
-
-
-# Bonds with partial double-bond character (amide, thioamide, ester, carbamate, urea): the
-# carbonyl-type carbon's single bond to N or O. Common practice: their rotation barriers
-# (roughly 15-20 kcal/mol for amides, 10-13 for esters; values from memory) make them
-# two-state switches rather than free rotors.
-STIFF_BOND = Chem.MolFromSmarts("[CX3](=[OX1,SX1])-[#7,#8]")
-
-
-def stiff_rows(zmat: ZMatrix, mol: Chem.Mol, rows: np.ndarray) -> np.ndarray:
-    """Which torsion ``rows`` turn about a partial double bond (:data:`STIFF_BOND`), ``(len(rows),)``."""
-    stiff = {frozenset(match[0::2]) for match in mol.GetSubstructMatches(STIFF_BOND)}
-    return np.array([frozenset((int(zmat.bond_ref[k + 3]), int(zmat.angle_ref[k + 3]))) in stiff
-                     for k in rows], dtype=bool)
-
-
-def context_angles(zmat: ZMatrix, rows: np.ndarray) -> np.ndarray:
-    """Bond angles a flow over torsion ``rows`` is conditioned on: those whose vertex is an atom
-    of one of the rows' central bonds (the backbone angle N-CA-C of a peptide, for one).
-
-    Returns
-    -------
-    numpy.ndarray of int
-        Columns of the Z-matrix angle array (column ``j`` is placement row ``j + 2``).
-    """
-    central = {int(a) for k in rows for a in (zmat.bond_ref[k + 3], zmat.angle_ref[k + 3])}
-    return np.array([r - 2 for r in range(2, zmat.n_atoms) if int(zmat.bond_ref[r]) in central], dtype=int)
 
 
 def _seed_cpu(generator: torch.Generator) -> None:

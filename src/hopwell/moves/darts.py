@@ -28,7 +28,14 @@ from dataclasses import dataclass
 import numpy as np
 import torch
 
-from hopwell.internal import InternalCoords, ZMatrix, cartesian_to_internal
+from hopwell.coords.internal import (
+    InternalCoords,
+    ZMatrix,
+    cartesian_to_internal,
+    internal_to_cartesian,
+)
+from hopwell.coords.torsions import rotatable_rows
+from hopwell.moves.base import MoveCounters, MoveResult, RandomStreams, Walkers
 
 MIN_SEPARATION_RAD = np.radians(60.0)  # centres closer than this to a kept one are dropped
 MAX_RADIUS_RAD = np.radians(90.0)
@@ -42,12 +49,6 @@ def wrapped(angle_rad: np.ndarray) -> np.ndarray:
 def torsion_distance(a_rad: np.ndarray, b_rad: np.ndarray) -> np.ndarray:
     """Euclidean norm of wrapped differences over the last axis (broadcasting)."""
     return np.sqrt(np.sum(wrapped(np.asarray(a_rad) - np.asarray(b_rad)) ** 2, axis=-1))
-
-
-def rotatable_rows(zmat: ZMatrix, moving: np.ndarray) -> np.ndarray:
-    """The moving torsion rows whose axis is a rotatable bond (no methyl or hydroxyl rotors)."""
-    moving = np.asarray(moving, dtype=int)
-    return moving[zmat.rotatable_mask[moving]]
 
 
 def distinct_centres(rotatable_rad: np.ndarray, min_separation_rad: float = MIN_SEPARATION_RAD) -> np.ndarray:
@@ -66,7 +67,7 @@ class Darts:
     Attributes
     ----------
     bonds_nm, angles_rad, torsions_rad : numpy.ndarray, shapes ``(K, n_atoms - 1)`` etc.
-        The centres' internal coordinates (:class:`hopwell.internal.InternalCoords` layout).
+        The centres' internal coordinates (:class:`hopwell.coords.internal.InternalCoords` layout).
     rows : numpy.ndarray of int
         Torsion rows that define the regions.
     radius_rad : float
@@ -106,7 +107,7 @@ def build_darts(zmat: ZMatrix, moving: np.ndarray, centres_nm: np.ndarray) -> Da
     ----------
     zmat : ZMatrix
     moving : numpy.ndarray of int
-        The sampler's moving torsion rows (:func:`hopwell.moves.moving_torsions`).
+        The sampler's moving torsion rows (:func:`hopwell.flow.torsion.moving_torsions`).
     centres_nm : numpy.ndarray, shape ``(n_seeds, n_atoms, 3)``
     """
     rows = rotatable_rows(zmat, moving)
@@ -122,3 +123,82 @@ def build_darts(zmat: ZMatrix, moving: np.ndarray, centres_nm: np.ndarray) -> Da
     separation = min(torsion_distance(rotatable[i], rotatable[j]) for i in range(len(kept)) for j in range(i))
     return Darts(ic.bonds_nm.numpy()[kept], ic.angles_rad.numpy()[kept], torsions[kept], rows,
                  float(min(0.5 * separation, MAX_RADIUS_RAD)))
+
+
+@dataclass
+class DartSettings:
+    """Settings of the seed darts.
+
+    Attributes
+    ----------
+    darts_per_cycle : int
+        Darts per walker per cycle: exact jumps between the basins of the seed structures.
+    """
+
+    darts_per_cycle: int = 4
+
+
+class SeedDarts:
+    """The seed-dart move (see the module docstring); a state outside every region stays put.
+
+    Parameters
+    ----------
+    darts : Darts
+    zmat : ZMatrix
+    guard : ProposalGuard
+    evaluator : EnergyEvaluator
+    per_walker : int
+        Darts per walker per application.
+    """
+
+    name = "dart"
+
+    def __init__(self, darts: Darts, zmat: ZMatrix, guard, evaluator, per_walker: int):
+        self.darts, self.zmat, self.guard, self.evaluator = darts, zmat, guard, evaluator
+        self.per_walker = int(per_walker)
+        self.counters = MoveCounters()
+
+    def _walker(self, walkers: Walkers, walker: int, rng: np.random.Generator) -> bool:
+        darts, kT, moved = self.darts, self.evaluator.kT, False
+        with torch.no_grad():
+            current = cartesian_to_internal(self.zmat, torch.as_tensor(walkers.positions_nm[walker:walker + 1]))
+        for _ in range(self.per_walker):
+            source = int(darts.region(current.torsions_rad.numpy())[0])
+            if source < 0:
+                break  # no dart moves a state outside every region: the rest would not either
+            target = int(rng.integers(0, darts.n_centres - 1))
+            target += target >= source  # uniform over the other centres
+            bonds, angles, torsions = darts.displace(current, source, target)
+            self.counters.proposed += 1
+            if not bool(((angles > 0) & (angles < np.pi)).all()) or bool((bonds <= 0).any()):
+                continue
+            with torch.no_grad():
+                positions, log_j = internal_to_cartesian(self.zmat, bonds, angles, torsions)
+            positions = positions.numpy()
+            mask = self.guard(positions)
+            if mask.rejected[0]:
+                self.counters.clash += int(mask.clash[0])
+                self.counters.stereo += int(mask.stereo[0] and not mask.clash[0])
+                continue
+            # q' is in the target region by construction; checked on the coordinates the next
+            # dart will read, so that round-off at a region's edge cannot break reversibility.
+            with torch.no_grad():
+                landed = cartesian_to_internal(self.zmat, torch.as_tensor(positions))
+            if int(darts.region(landed.torsions_rad.numpy())[0]) != target:
+                continue
+            energy = float(self.evaluator.energies_kj(positions)[0])
+            log_alpha = -(energy - walkers.energies_kj[walker]) / kT + float(log_j[0] - current.log_jacobian[0])
+            if np.isfinite(energy) and np.log(rng.random()) < log_alpha:
+                self.counters.accepted += 1
+                walkers.set(walker, positions[0], energy)
+                current, moved = landed, True  # the new state's coordinates, already computed
+        return moved
+
+    def apply(self, walkers: Walkers, which: np.ndarray, streams: RandomStreams) -> MoveResult:
+        return MoveResult(np.array([self._walker(walkers, int(w), streams.numpy) for w in which], dtype=bool))
+
+    def state_dict(self) -> dict:
+        return {self.name: self.counters.to_json()}
+
+    def load_state_dict(self, state: dict) -> None:
+        self.counters = MoveCounters.from_json(state.get(self.name, {}))

@@ -17,11 +17,11 @@ from dataclasses import replace
 
 import numpy as np
 
-from hopwell import stats
-from hopwell.energy import EnergyEvaluator, kT_kj
+from hopwell.analysis import stats
 from hopwell.errors import InputError
-from hopwell.store import RunStore
+from hopwell.sampling.store import RunStore
 from hopwell.systems.builder import BuildOptions, build
+from hopwell.systems.energy import EnergyEvaluator, kT_kj
 
 # Temperatures further than this fraction from the run's are refused: the overlap of the
 # energy distributions of a small molecule falls off within tens of kelvin (chosen).
@@ -92,7 +92,7 @@ def reweighted_populations(series: np.ndarray, log_w_series: np.ndarray, n_state
 
     Returns
     -------
-    hopwell.stats.PopulationResult
+    hopwell.analysis.stats.PopulationResult
         ``statistical_inefficiency`` is g of the weighted series (see the module docstring),
         ``block_length`` the bootstrap block, ``ess`` Kish's effective sample size over g.
 

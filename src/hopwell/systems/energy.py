@@ -9,7 +9,7 @@ import numpy as np
 import openmm
 from openmm import unit
 
-from hopwell.integrators import make_integrator
+from hopwell.systems.integrators import make_integrator
 
 # Molar gas constant, kJ/mol/K (CODATA 2018, exact by the SI definition of k_B and N_A).
 GAS_CONSTANT_KJ = 0.00831446261815324
@@ -51,7 +51,7 @@ class EnergyEvaluator:
     timestep_ps, friction_per_ps : float
         ``LangevinMiddleIntegrator`` settings.
     local_move : {"langevin", "ghmc"}
-        Unadjusted ``LangevinMiddleIntegrator`` or exact GHMC (see :mod:`hopwell.integrators`).
+        Unadjusted ``LangevinMiddleIntegrator`` or exact GHMC (see :mod:`hopwell.systems.integrators`).
     seed : int
         Seed of the integrator's random numbers and of the initial velocities drawn for each
         Langevin segment (0 picks one at random).

@@ -10,7 +10,7 @@ for each method the comparison gives:
 * the time to a stated error: the first time from which the running error stays within the
   tolerance to the end of the budget (a run that merely crosses the reference on its way does
   not count);
-* the final populations with their 95% intervals (:func:`hopwell.report.analyse`), effective
+* the final populations with their 95% intervals (:func:`hopwell.analysis.summary.analyse`), effective
   samples per second of sampling time, and the acceptance of the method's moves.
 
 A reference file (TOML) names sums of states and their reference populations::
@@ -35,10 +35,10 @@ import mdtraj as md
 import numpy as np
 from rdkit import Chem
 
-from hopwell import states as st
+from hopwell.analysis import states as st
 from hopwell.atomic import atomic_write_bytes
 from hopwell.errors import InputError
-from hopwell.store import RunStore
+from hopwell.sampling.store import RunStore
 
 METHODS = ("flow", "md", "remd")
 TIME_POINTS = 24  # points of the running estimates over the budget
@@ -112,8 +112,8 @@ def _run_one(job: dict) -> str:
     """Worker: one run directory (module level, so that a process pool can pickle it)."""
     import torch
 
-    from hopwell.run import start_run
-    from hopwell.sampler import Budget
+    from hopwell.sampling.run import start_run
+    from hopwell.sampling.sampler import Budget
 
     torch.set_num_threads(1)
     start_run(job["input"], Path(job["dir"]), job["build"], job["settings"], Budget(seconds=job["seconds"]))
@@ -203,7 +203,7 @@ def _acceptance(run_dir: Path, method: str) -> dict:
 def compare_runs(jobs: list[dict], budget_s: float, references: list[Reference] | None,
                  tolerance: float, states_file=None) -> dict:
     """The comparison summary (what ``comparison.json`` holds)."""
-    from hopwell.report import analyse
+    from hopwell.analysis.summary import analyse
 
     run_dirs = [Path(j["dir"]) for j in jobs]
     model = common_model(run_dirs, states_file)

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from hopwell.stats import statistical_inefficiency
+from hopwell.analysis.stats import statistical_inefficiency
 
 KARPLUS_HN_HA = {
     "vuister-bax-1993": (6.51, -1.76, 1.60),

@@ -1,0 +1,1 @@
+"""The numbers of a report: states, statistics, reweighting, observables, the verdict."""

@@ -1,0 +1,183 @@
+"""From a run directory to the summary: populations, free energies, diagnostics and the verdict.
+
+Rendering (HTML, plots, exported structures) lives in :mod:`hopwell.report`; this module only
+computes numbers.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import mdtraj as md
+import numpy as np
+from rdkit import Chem
+
+from hopwell.analysis import states as st
+from hopwell.analysis import stats
+from hopwell.analysis.observables import KARPLUS_HN_HA, j3_hn_ha, series_mean
+from hopwell.analysis.production import (
+    Production,
+    acceptance_over_time,
+    gather,
+    move_acceptance,
+    walker_series,
+)
+from hopwell.analysis.reweight import (
+    hamiltonian_log_weights,
+    reweighted_populations,
+    temperature_log_weights,
+)
+from hopwell.analysis.verdict import judge
+from hopwell.sampling.store import RunStore
+from hopwell.systems.energy import kT_kj
+
+KJ_PER_KCAL = 4.184
+
+
+def _state_model(store: RunStore, mol: Chem.Mol, topology: md.Topology, states_file=None):
+    if states_file is not None:
+        return st.read_user_states(states_file, mol), None
+    if store.config().get("kind") == "peptide":
+        model = st.backbone_model(topology)
+        if model is not None:
+            return model, None
+    return None, st.state_torsions(mol)
+
+
+def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict | None = None,
+            states_file: Path | None = None, model=None) -> dict:
+    """Populations, free energies, diagnostics and the verdict of a run (the summary dict).
+
+    Parameters
+    ----------
+    run_dir : Path
+    rng_seed : int
+        Seeds the bootstrap.
+    n_boot : int
+    reweight : dict, optional
+        ``temperature_K`` and/or build overrides (``solvent``, ``forcefield``) to reweight the
+        production samples to (see :mod:`hopwell.analysis.reweight`).
+    states_file : Path, optional
+        A user's states TOML (see :class:`hopwell.analysis.states.UserStates`); default automatic states.
+    model : optional
+        A state model to use instead (:mod:`hopwell.analysis.states`), e.g. one shared by several runs.
+    """
+    store = RunStore.open(Path(run_dir))
+    config = store.config()
+    mol = next(iter(Chem.SDMolSupplier(str(store.path / "molecule.sdf"), removeHs=False)))
+    topology = md.load_topology(str(store.path / "topology.pdb"))
+    model, torsions = (model, None) if model is not None else _state_model(store, mol, topology, states_file)
+    temperature = float(config["sampler"]["temperature_K"])
+    kT = kT_kj(temperature)
+    production = gather(store, topology, model.torsions if model else torsions, kT)
+    if model is None:
+        model = st.torsion_model(mol, production.dihedrals_rad)
+    labels = model.assign(production.dihedrals_rad)
+    series = walker_series(labels, production)
+    n_states = len(model.names)
+    rng = np.random.default_rng(rng_seed)
+    pops = stats.population_estimate(series, n_states, rng, n_boot=n_boot)
+    dg = stats.free_energy_differences(pops, kT)
+    importance = _importance(production, model, n_states, rng, n_boot)
+
+    n_walkers = series.shape[0]
+    named = [model.kind == "backbone" or (model.kind == "user" and s < n_states - 1) for s in range(n_states)]
+    verdict = judge(series, pops, model.names, named, importance)
+    summary = {
+        "temperature_K": temperature,
+        "verdict": verdict.label,
+        "reasons": verdict.reasons,
+        "warnings": verdict.warnings,
+        "state_model": model.kind,
+        "states": [
+            {
+                "name": name,
+                "population": float(pops.populations[s]),
+                "ci95": [float(pops.lower[s]), float(pops.upper[s])],
+                "dG_kJ_per_mol": float(dg.values[s]),
+                "dG_ci95": [float(dg.lower[s]), float(dg.upper[s])],
+                "dG_kcal_per_mol": float(dg.values[s] / KJ_PER_KCAL),
+                "walkers_seen": verdict.walkers_seen[s],
+            }
+            for s, name in enumerate(model.names)
+        ],
+        "dG_reference": model.names[int(dg.reference)],
+        "samples": int(series.size),
+        "effective_samples": float(pops.ess),
+        "statistical_inefficiency": float(pops.statistical_inefficiency),
+        "walkers": int(n_walkers),
+        "transitions": verdict.transitions,
+        "split_rhat": verdict.split_rhat,
+        "per_walker_populations": [
+            [float(np.mean(row == s)) for s in range(n_states)] for row in series
+        ],
+        "transitions_per_walker": [int(stats.count_transitions(row)) for row in series],
+        "flow_acceptance_production": (production.flow_accepted / len(production.proposal_block)
+                                       if len(production.proposal_block) else None),
+        "move_acceptance": move_acceptance(store),
+        "importance_sampling": importance,
+        # A run without flow proposals still records a (never accepted) flow-move state.
+        "acceptance_over_time": (acceptance_over_time(production.acceptance)
+                                 if config["sampler"].get("proposals_per_cycle", 1) else []),
+    }
+    if model.kind == "backbone":  # phi is the model's first dihedral
+        phi = walker_series(production.dihedrals_rad[:, 0], production)
+        summary["observables"] = {
+            f"3J_HN_HA_Hz ({name})": dict(zip(("mean", "ci95_low", "ci95_high"), series_mean(j3_hn_ha(phi, name))))
+            for name in KARPLUS_HN_HA
+        }
+    summary["_labels"] = labels
+    summary["_series"] = series
+    summary["_dihedrals"] = production.dihedrals_rad
+    summary["_torsion_names"] = (["phi", "psi"] if model.kind == "backbone" else
+                                 ["-".join(str(a + 1) for a in atoms) for atoms, _ in model.torsions])
+    if reweight:
+        summary["reweighted"] = _reweighted(store, reweight, production, series, model, rng, n_boot)
+    return summary
+
+
+def _reweighted(store, reweight, production, series, model, rng, n_boot) -> dict:
+    temperature = float(store.config()["sampler"]["temperature_K"])
+    new_temperature = float(reweight.get("temperature_K", temperature))
+    log_w = temperature_log_weights(production.energy_kj, temperature, new_temperature) \
+        if new_temperature != temperature else np.zeros(len(production.energy_kj))
+    overrides = {k: v for k, v in reweight.items() if k != "temperature_K"}
+    if overrides:
+        log_w = log_w + hamiltonian_log_weights(store, overrides, new_temperature, production.energy_kj)
+    result = reweighted_populations(series, walker_series(log_w, production), len(model.names), rng, n_boot)
+    return {
+        "to": {"temperature_K": new_temperature, **overrides},
+        "effective_samples": float(result.ess),
+        "statistical_inefficiency": float(result.statistical_inefficiency),
+        "states": [{"name": name, "population": float(result.populations[s]),
+                    "ci95": [float(result.lower[s]), float(result.upper[s])]}
+                   for s, name in enumerate(model.names)],
+    }
+
+
+def _importance(production: Production, model, n_states: int, rng, n_boot: int) -> dict | None:
+    """The frozen flow's proposals as an importance sample, normalised per proposal block.
+
+    A flow move keeps the walker's bonds, angles and offsets r and draws torsions t from q, so
+    within one block the weights exp(-u) / q estimate p(t | r); averaging blocks over the
+    chain's r gives populations independent of the chain's torsion mixing (see
+    :func:`hopwell.analysis.stats.blockwise_importance_populations`).
+    """
+    if not len(production.proposal_block) or not np.isfinite(production.proposal_log_weight).any():
+        return None
+    labels = model.assign(production.proposal_dihedrals_rad)
+    result = stats.blockwise_importance_populations(
+        labels, production.proposal_log_weight, production.proposal_block, n_states, rng, n_boot=n_boot)
+    return {
+        "populations": [float(p) for p in result.populations],
+        "ci95": [[float(a), float(b)] for a, b in zip(result.lower, result.upper)],
+        "effective_samples": float(result.ess),
+        "proposals": int(len(labels)),
+        "blocks": int(result.n_samples),
+    }
+
+
+def public(summary: dict) -> dict:
+    """The summary without its private bookkeeping (keys starting with an underscore)."""
+    return {k: v for k, v in summary.items() if not k.startswith("_")}
+

@@ -1,0 +1,103 @@
+"""The convergence verdict: rules that each make a run "not converged", and warnings.
+
+Every rule reads the per-walker state series and the population estimate only, so each can be
+made to fire, or stay silent, on a constructed series (``tests/test_verdict.py``).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from hopwell.analysis import stats
+from hopwell.analysis.states import POPULATION_FLOOR
+
+RHAT_MAX = 1.01  # Vehtari et al. 2021 recommend trusting estimates only below 1.01
+MIN_TRANSITIONS = 10  # per populated state, pooled over walkers (common practice, chosen)
+MIN_ESS = 100
+MIN_IS_ESS_FRACTION = 0.1  # importance ESS below 10% of proposals: weights too heavy-tailed
+
+
+@dataclass
+class Verdict:
+    """The verdict's reasons (each makes the run "not converged"), warnings and the figures
+    behind them."""
+
+    reasons: list[str] = field(default_factory=list)
+    warnings: list[str] = field(default_factory=list)
+    split_rhat: dict[str, float] = field(default_factory=dict)
+    walkers_seen: list[int] = field(default_factory=list)
+    transitions: int = 0
+
+    @property
+    def converged(self) -> bool:
+        return not self.reasons
+
+    @property
+    def label(self) -> str:
+        return "converged" if self.converged else "not converged"
+
+
+def judge(series: np.ndarray, estimate: stats.PopulationResult, names: list[str],
+          named: list[bool], importance: dict | None = None) -> Verdict:
+    """Apply the verdict's rules to a run.
+
+    Parameters
+    ----------
+    series : numpy.ndarray of int, shape ``(n_walkers, n_per_walker)``
+        State labels per walker in time order.
+    estimate : PopulationResult
+        From :func:`hopwell.analysis.stats.population_estimate` on ``series``.
+    names : list of str
+        State names, indexed by label.
+    named : list of bool
+        Which states were named before the run (backbone regions, a user's states): one never
+        visited is warned about, since a missed basin looks just like that.
+    importance : dict, optional
+        The frozen flow's importance estimate (``populations``, ``ci95``, ``effective_samples``,
+        ``proposals``); its disagreements are warnings, not reasons, because blockwise
+        normalization biases it by O(1 / block size) (DEVELOPERS.md).
+
+    Returns
+    -------
+    Verdict
+    """
+    n_states = len(names)
+    n_walkers = series.shape[0]
+    out = Verdict()
+    out.walkers_seen = [int((series == s).any(axis=1).sum()) for s in range(n_states)]
+    out.transitions = int(sum(stats.count_transitions(row) for row in series))
+    for s in range(n_states):
+        if estimate.populations[s] < POPULATION_FLOOR:
+            continue
+        indicator = (series == s).astype(float)
+        if series.shape[1] >= 4 and 0 < indicator.mean() < 1:
+            out.split_rhat[names[s]] = float(stats.split_rhat(indicator))
+        if n_walkers > 1 and out.walkers_seen[s] == 1:
+            out.reasons.append(f"state {names[s]} was seen by one walker only")
+    bad = {k: v for k, v in out.split_rhat.items() if not np.isfinite(v) or v > RHAT_MAX}
+    if bad:
+        worst = max(bad, key=lambda k: bad[k])
+        out.reasons.append(f"split R-hat {bad[worst]:.3f} > {RHAT_MAX} for state {worst}")
+    populated = int((estimate.populations >= POPULATION_FLOOR).sum())
+    if populated > 1 and out.transitions < MIN_TRANSITIONS * populated:
+        out.reasons.append(f"only {out.transitions} transitions between states")
+    if estimate.block_length >= series.shape[1]:
+        out.reasons.append("the series are shorter than one bootstrap block (10 x the statistical"
+                           " inefficiency): the intervals are not defined")
+    if estimate.ess < MIN_ESS:
+        out.reasons.append(f"effective sample size {estimate.ess:.0f} < {MIN_ESS}")
+    unseen = [names[s] for s in range(n_states) if named[s] and out.walkers_seen[s] == 0]
+    if unseen:
+        out.warnings.append(f"never visited: {', '.join(unseen)} (their populations are upper bounds"
+                            " only; seed a structure there if one is known)")
+    if importance is not None:
+        apart = [names[s] for s in range(n_states)
+                 if importance["ci95"][s][0] > estimate.upper[s] or importance["ci95"][s][1] < estimate.lower[s]]
+        if apart:
+            out.warnings.append(f"MCMC and importance-sampling estimates disagree for {', '.join(apart)}")
+        if importance["effective_samples"] < MIN_IS_ESS_FRACTION * importance["proposals"]:
+            out.warnings.append(f"heavy-tailed importance weights (ESS {importance['effective_samples']:.0f}"
+                                f" of {importance['proposals']} proposals)")
+    return out

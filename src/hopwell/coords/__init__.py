@@ -1,0 +1,1 @@
+"""Internal coordinates (Z-matrix, NeRF, Jacobians) and the clash and stereo guards."""

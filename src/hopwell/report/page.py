@@ -1,0 +1,90 @@
+"""The report page (self-contained HTML) and the terminal table."""
+
+from __future__ import annotations
+
+import html
+
+from hopwell.report.plots import (
+    acceptance_plot,
+    population_plot,
+    running_plot,
+    torsion_plot,
+)
+
+
+def _acceptance_section(summary: dict) -> str:
+    """The acceptance-over-time heading and plot; empty for runs without flow moves."""
+    windows = summary["acceptance_over_time"]
+    if not windows:
+        return ""
+    return f"""<h2>Acceptance over time</h2>
+<p>Flow moves per window of cycles; one-torsion moves and seed darts are not recorded per
+cycle, and single flow proposals only in production.</p>
+<p><img id="acceptance-plot" alt="flow acceptance" src="data:image/png;base64,{acceptance_plot(windows)}"></p>
+"""
+
+
+def html_page(summary: dict) -> str:
+    verdict = summary["verdict"]
+    colour = "#2e7d32" if verdict == "converged" else "#c62828"
+    reasons = "".join(f"<li>{html.escape(r)}</li>" for r in summary["reasons"])
+    reasons += "".join(f"<li>warning: {html.escape(w)}</li>" for w in summary["warnings"])
+    rows = "".join(
+        f"<tr><td>{html.escape(s['name'])}</td><td>{100 * s['population']:.1f}</td>"
+        f"<td>{100 * s['ci95'][0]:.1f} - {100 * s['ci95'][1]:.1f}</td>"
+        f"<td>{s['dG_kJ_per_mol']:.2f}</td><td>{s['dG_ci95'][0]:.2f} - {s['dG_ci95'][1]:.2f}</td></tr>"
+        for s in summary["states"]
+    )
+    acceptance = summary["flow_acceptance_production"]
+    return f"""<!DOCTYPE html>
+<html lang="en"><head><meta charset="utf-8"><title>hopwell report</title>
+<style>body{{font-family:sans-serif;max-width:900px;margin:2em auto;color:#222}}
+table{{border-collapse:collapse}}td,th{{border:1px solid #ccc;padding:4px 10px;text-align:right}}
+td:first-child,th:first-child{{text-align:left}}.verdict{{color:{colour};font-size:1.4em}}</style>
+</head><body>
+<h1>Conformer populations</h1>
+<p class="verdict" id="verdict">Verdict: {html.escape(verdict)}</p>
+<ul>{reasons}</ul>
+<p>{summary['temperature_K']:.1f} K; {summary['samples']} production samples from {summary['walkers']}
+walker(s); effective samples {summary['effective_samples']:.0f}; {summary['transitions']} transitions;
+flow acceptance {"-" if acceptance is None else f"{100 * acceptance:.1f}%"}; over the whole run:
+{", ".join(f"{k.replace('_', ' ')} {100 * v:.1f}%" for k, v in summary["move_acceptance"].items()
+           if isinstance(v, float)) or "-"}.</p>
+<table id="populations"><tr><th>state</th><th>population (%)</th><th>95% interval (%)</th>
+<th>dG (kJ/mol) vs {html.escape(summary['dG_reference'])}</th><th>dG 95% interval</th></tr>{rows}</table>
+{"".join(f"<p>{html.escape(k)}: {v['mean']:.2f} (95% {v['ci95_low']:.2f} - {v['ci95_high']:.2f})</p>"
+         for k, v in summary.get("observables", {}).items())}
+<h2>Walkers</h2>
+<table id="walkers"><tr><th>walker</th>{"".join(f"<th>{html.escape(s['name'])} (%)</th>" for s in summary["states"])}<th>transitions</th></tr>
+{"".join(f"<tr><td>{w}</td>" + "".join(f"<td>{100 * p:.1f}</td>" for p in row) + f"<td>{t}</td></tr>"
+         for w, (row, t) in enumerate(zip(summary["per_walker_populations"], summary["transitions_per_walker"])))}
+</table>
+<p><img id="population-plot" alt="populations" src="data:image/png;base64,{population_plot(summary)}"></p>
+<h2>Free energy along the state torsions</h2>
+<p><img id="torsion-plot" alt="torsion free energies" src="data:image/png;base64,{torsion_plot(summary)}"></p>
+<h2>Running estimates</h2>
+<p><img id="running-plot" alt="running populations" src="data:image/png;base64,{running_plot(summary)}"></p>
+{_acceptance_section(summary)}<p>Populations are properties of the force field and solvent model; an unconverged run
+misleads; results inform research and do not replace experiment.</p>
+</body></html>
+"""
+
+
+def format_table(summary: dict) -> str:
+    """The population table as plain text, for the terminal."""
+    lines = [f"verdict: {summary['verdict']}"] + [f"  - {r}" for r in summary["reasons"]]
+    lines += [f"  warning: {w}" for w in summary["warnings"]]
+    lines.append(f"{'state':<24} {'population':>10} {'95% interval':>17} {'dG kJ/mol':>10}")
+    for s in summary["states"]:
+        lines.append(f"{s['name']:<24} {100 * s['population']:>9.1f}% "
+                     f"{100 * s['ci95'][0]:>7.1f}-{100 * s['ci95'][1]:<6.1f}% {s['dG_kJ_per_mol']:>10.2f}")
+    for name, value in summary.get("observables", {}).items():
+        lines.append(f"{name}: {value['mean']:.2f} ({value['ci95_low']:.2f}-{value['ci95_high']:.2f})")
+    if "reweighted" in summary:
+        rw = summary["reweighted"]
+        target = ", ".join(f"{k} {v}" for k, v in rw["to"].items())
+        lines.append(f"reweighted to {target} (effective samples {rw['effective_samples']:.0f}):")
+        for s in rw["states"]:
+            lines.append(f"{s['name']:<24} {100 * s['population']:>9.1f}% "
+                         f"{100 * s['ci95'][0]:>7.1f}-{100 * s['ci95'][1]:<6.1f}%")
+    return "\n".join(lines)

@@ -1,0 +1,367 @@
+"""The sampler: the scheduler that runs the moves over the walkers, training then production.
+
+Each cycle, for each walker in turn (moves in :mod:`hopwell.moves`, each with its exact
+Metropolis-Hastings ratio in its own docstring):
+
+1. a local segment (:class:`~hopwell.moves.langevin.LangevinSegment`, Langevin or GHMC);
+2. a block of flow proposals (:class:`~hopwell.moves.flow_block.FlowBlock`);
+3. one-torsion redraws (:class:`~hopwell.moves.one_torsion.OneTorsion`) and seed darts between
+   the basins of the minimized seeds (:class:`~hopwell.moves.darts.SeedDarts`).
+
+The chain state is recorded after the local segment and after the other moves (a fixed
+sub-sampling of a stationary chain is stationary). During training the flow is refit every few
+cycles on recent walker states (:class:`~hopwell.flow.training.FlowTrainer`); the chain is then
+adaptive, not Markov, so these samples are kept for diagnostics only. Training ends at a set
+cycle or time; from then on the flow is frozen and every walker state and every flow proposal
+(with energy, log q and log J) is recorded as production. See :mod:`hopwell.sampling.store` for
+the crash-safe run directory.
+"""
+
+from __future__ import annotations
+
+import io
+import json
+import signal
+import time
+from dataclasses import dataclass
+
+import numpy as np
+import torch
+from rdkit import Chem
+
+from hopwell.atomic import atomic_write_bytes
+from hopwell.coords.guards import ProposalGuard
+from hopwell.coords.internal import build_zmatrix, cartesian_to_internal
+from hopwell.errors import InputError
+from hopwell.flow.training import FlowSettings, FlowTrainer
+from hopwell.moves.base import MoveCounters, RandomStreams, Walkers
+from hopwell.moves.darts import DartSettings, SeedDarts, build_darts
+from hopwell.moves.exchange import LadderSettings
+from hopwell.moves.flow_block import FlowBlock, FlowBlockSettings
+from hopwell.moves.langevin import LangevinSegment, LangevinSettings
+from hopwell.moves.one_torsion import OneTorsion, OneTorsionSettings
+from hopwell.sampling.store import MOVE_FLOW, MOVE_LANGEVIN, STATE_FIELDS, RunStore
+from hopwell.systems.builder import rotatable_bonds
+from hopwell.systems.energy import EnergyEvaluator
+
+
+@dataclass
+class ScheduleSettings:
+    """Settings of the run as a whole.
+
+    Attributes
+    ----------
+    temperature_K : float
+    method : {"flow", "md", "remd"}
+        "flow": local segments plus flow, one-torsion and dart moves; "md": the local segments
+        alone (the plain-MD baseline, from the same seeds, into the same kind of run directory);
+        "remd": temperature replica exchange (:mod:`hopwell.sampling.replica`).
+    cycles_per_chunk : int
+        Cycles between chunk writes and checkpoints.
+    seed : int
+    """
+
+    temperature_K: float = 300.0
+    method: str = "flow"
+    cycles_per_chunk: int = 10
+    seed: int = 2024
+
+
+@dataclass
+class SamplerSettings(FlowSettings, DartSettings, OneTorsionSettings, FlowBlockSettings, LadderSettings,
+                      LangevinSettings, ScheduleSettings):
+    """Every setting of a run, flat as written to ``run.toml``; each group is documented with the
+    part it belongs to: :class:`ScheduleSettings`, :class:`~hopwell.moves.langevin.LangevinSettings`,
+    :class:`~hopwell.moves.exchange.LadderSettings`, :class:`~hopwell.moves.flow_block.FlowBlockSettings`,
+    :class:`~hopwell.moves.one_torsion.OneTorsionSettings`, :class:`~hopwell.moves.darts.DartSettings`
+    and :class:`~hopwell.flow.training.FlowSettings`."""
+
+
+@dataclass
+class Budget:
+    """When to stop: production samples recorded, or sampling seconds spent (or both).
+
+    Seconds count over the whole run, resumes included (the checkpoint keeps the elapsed time).
+    """
+
+    samples: int | None = None
+    seconds: float | None = None
+
+    def done(self, production_samples: int, elapsed_s: float) -> bool:
+        if self.samples is not None and production_samples >= self.samples:
+            return True
+        return self.seconds is not None and elapsed_s >= self.seconds
+
+
+class Sampler:
+    """Owns the OpenMM context, the flow, the walkers, the moves and the RNGs of one run.
+
+    Parameters
+    ----------
+    mol : rdkit.Chem.Mol
+        Molecule with explicit hydrogens (graph, stereo reference).
+    system : openmm.System
+    seeds_nm : numpy.ndarray, shape ``(n_seeds, n_atoms, 3)``
+    settings : SamplerSettings
+    store : RunStore
+    n_walkers : int, optional
+        Defaults to one per seed; more are spread over the seeds in turn.
+    platform : str, optional
+    """
+
+    def __init__(self, mol: Chem.Mol, system, seeds_nm: np.ndarray, settings: SamplerSettings,
+                 store: RunStore, n_walkers: int | None = None, platform: str | None = None):
+        self.settings, self.store, self.system = settings, store, system
+        self.streams = RandomStreams.seeded(settings.seed)
+        self.evaluator = self._evaluator(settings.temperature_K, platform)
+        self.zmat = build_zmatrix(
+            mol.GetNumAtoms(), [(b.GetBeginAtomIdx(), b.GetEndAtomIdx()) for b in mol.GetBonds()],
+            heavy=[a.GetAtomicNum() > 1 for a in mol.GetAtoms()], rotatable=rotatable_bonds(mol))
+        self.guard = ProposalGuard.from_mol(mol, seeds_nm[0])
+        self.trainer = FlowTrainer(self.zmat, mol, seeds_nm, settings, settings.seed)
+        self.dart_centres_nm = None  # the minimized seeds, kept in the checkpoint
+        if settings.method == "flow" and settings.darts_per_cycle > 0:
+            self.dart_centres_nm = self.evaluator.minimize(seeds_nm)
+        n_walkers = n_walkers or len(seeds_nm)
+        positions = np.stack([seeds_nm[k % len(seeds_nm)] for k in range(n_walkers)])
+        self.walkers = Walkers(positions, self.evaluator.energies_kj(positions))
+        if not np.all(np.isfinite(self.walkers.energies_kj)):
+            raise ValueError("a seed structure has a non-finite energy")
+        failed = np.flatnonzero(np.asarray(self.guard(positions).rejected))
+        if len(failed):  # every proposal from such a state would be rejected: it would sample by Langevin alone
+            raise InputError(f"seed structure {int(failed[0]) % len(seeds_nm) + 1} fails the clash or stereo"
+                             " check (overlapping atoms, or stereochemistry unlike the first seed's)")
+        self._build_moves()
+        self.cycle, self.training_end_cycle, self.elapsed_s = 0, -1, 0.0
+        self.next_chunk, self.production_samples = 0, 0
+        self._stop = False
+        self._pending: list[tuple[dict, dict]] = []
+        self._cycle_start = time.perf_counter()
+
+    def _evaluator(self, temperature_K: float, platform: str | None) -> EnergyEvaluator:
+        """A fresh context and integrator at ``temperature_K``, its noise seeded from the run's RNG."""
+        s = self.settings
+        return EnergyEvaluator(self.system, temperature_K, platform=platform, timestep_ps=s.timestep_fs * 1e-3,
+                               friction_per_ps=s.friction_per_ps, seed=int(self.streams.numpy.integers(1, 2**31 - 1)),
+                               local_move=s.local_move)
+
+    def _log(self, message: str) -> None:
+        self.store.log(f"cycle {self.cycle} {message}")
+
+    def _build_moves(self) -> None:
+        """The moves over the current evaluator and dart centres."""
+        s = self.settings
+        self.local = LangevinSegment([self.evaluator], s.langevin_steps, self._log)
+        self.flow_move = FlowBlock(self.trainer, self.guard, self.evaluator, s.proposals_per_cycle)
+        self.one_torsion = OneTorsion(self.trainer, self.guard, self.evaluator, s.single_moves_per_cycle)
+        darts = (build_darts(self.zmat, self.trainer.all_moving, self.dart_centres_nm)
+                 if self.dart_centres_nm is not None else None)
+        self.seed_darts = SeedDarts(darts, self.zmat, self.guard, self.evaluator, s.darts_per_cycle) if darts else None
+        # Production walker states per dart region (index 0: outside every region).
+        self.basin_counts = np.zeros(1 + (darts.n_centres if darts else 0), dtype=np.int64)
+
+    @property
+    def moves(self) -> list:
+        """The moves that run each cycle, in order."""
+        s = self.settings
+        if s.method == "md":
+            return [self.local]
+        return [self.local] + [m for m, on in ((self.flow_move, s.proposals_per_cycle),
+                                               (self.one_torsion, s.single_moves_per_cycle),
+                                               (self.seed_darts, self.seed_darts is not None)) if on]
+
+    @property
+    def stats(self) -> dict[str, MoveCounters]:
+        """Every move's counters by checkpoint key (``training``/``production`` for the flow)."""
+        return {**self.flow_move.counters, "single": self.one_torsion.counters,
+                "dart": self.seed_darts.counters if self.seed_darts else MoveCounters(),
+                "langevin": self.local.counters}
+
+    @property
+    def n_walkers(self) -> int:
+        return len(self.walkers)
+
+    @property
+    def production(self) -> bool:
+        return self.training_end_cycle >= 0
+
+    def _set_phase(self) -> None:
+        self.flow_move.production = self.production
+        self.local.pieces = 1 if self.production else self.settings.buffer_frames_per_segment
+
+    def _maybe_end_training(self) -> None:
+        s = self.settings
+        if not self.production and (self.cycle >= s.training_cycles or (
+                s.training_seconds is not None and self.elapsed_s >= s.training_seconds)):
+            self.training_end_cycle = self.cycle
+            self.store.log(f"cycle {self.cycle}: training ended, flow frozen; acceptance in"
+                           f" training {self.stats['training'].acceptance():.3f}")
+        self._set_phase()
+
+    def basin_populations(self) -> np.ndarray | None:
+        """Running share of production walker states in each seed's basin (dart region).
+
+        A progress indicator, not an estimate: regions are balls around the minimized seeds,
+        and the share outside all of them comes last. None without darts or samples yet.
+        """
+        total = self.basin_counts.sum()
+        if self.seed_darts is None or total == 0:
+            return None
+        return np.concatenate([self.basin_counts[1:], self.basin_counts[:1]]) / total
+
+    def run_cycle(self) -> None:
+        """One cycle over all walkers; queues the records for the next chunk."""
+        production = self.production
+        states = {k: [] for k in STATE_FIELDS}
+        proposals = []
+        for walker in range(self.n_walkers):
+            which = np.array([walker])
+            local, *others = self.moves
+            result = local.apply(self.walkers, which, self.streams)
+            if result.frames_nm is not None:
+                self.trainer.add(result.frames_nm)
+            self._record_state(states, walker, MOVE_LANGEVIN, production)
+            if not others:
+                continue
+            moved = False
+            for move in others:
+                result = move.apply(self.walkers, which, self.streams)
+                if move is self.flow_move:
+                    moved = bool(result.accepted[0])
+                    if result.proposals is not None:
+                        proposals.append(result.proposals | {"cycle": np.full(len(result.proposals["walker"]),
+                                                                              self.cycle, np.int64)})
+            self._record_state(states, walker, MOVE_FLOW, production, accepted=moved)
+        if not production:
+            self.trainer.add(np.stack(states["positions_nm"]))
+        else:
+            self.production_samples += len(states["walker"])
+            self.local.count_guard_failures(self.guard, self.walkers.positions_nm)
+            if self.seed_darts is not None:  # running occupancy of the seeds' basins, for progress
+                with torch.no_grad():
+                    ic = cartesian_to_internal(self.zmat, torch.as_tensor(self.walkers.positions_nm))
+                self.basin_counts += np.bincount(self.seed_darts.darts.region(ic.torsions_rad.numpy()) + 1,
+                                                 minlength=len(self.basin_counts))
+        self._pending.append((states, _concat(proposals)))
+        self.cycle += 1
+        if not production and self.cycle % self.settings.fit_every == 0:
+            self.trainer.fit(self.streams.numpy, self.streams.torch, self._log)
+
+    def _record_state(self, states, walker, move, production, accepted=True) -> None:
+        states["positions_nm"].append(self.walkers.positions_nm[walker].astype(np.float32))
+        states["energy_kj"].append(self.walkers.energies_kj[walker])
+        states["walker"].append(walker)
+        states["cycle"].append(self.cycle)
+        states["move"].append(move)
+        states["accepted"].append(accepted)
+        states["production"].append(production)
+        states["time_s"].append(self.elapsed_s + time.perf_counter() - self._cycle_start)
+
+    # -- persistence ----------------------------------------------------------------------
+    def _counters_json(self) -> dict:
+        moves = [self.local, self.flow_move, self.one_torsion] + ([self.seed_darts] if self.seed_darts else [])
+        out = {"dart": MoveCounters().to_json()}
+        for move in moves:
+            out.update(move.state_dict())
+        return out
+
+    def flush(self) -> None:
+        """Write queued cycles as one chunk, then the checkpoint that counts it."""
+        if self._pending:
+            states = {k: np.concatenate([np.asarray(s[k]) for s, _ in self._pending]) for k in self._pending[0][0]}
+            self.store.write_chunk(self.next_chunk, states, _concat([p for _, p in self._pending if p]))
+            self.next_chunk += 1
+            self._pending = []
+        flow_path = self.store.flow_path(self.cycle)
+        # Atomic like every other file: a flush at the checkpoint's own cycle (the run's last
+        # one, or a resume from checkpoint zero) rewrites the flow file state.npz names.
+        buffer = io.BytesIO()
+        torch.save(self.trainer.state_dict(), buffer)
+        atomic_write_bytes(flow_path, buffer.getvalue())
+        self.store.write_state({
+            "cycle": np.int64(self.cycle), "next_chunk": np.int64(self.next_chunk),
+            "training_end_cycle": np.int64(self.training_end_cycle), "elapsed_s": np.float64(self.elapsed_s),
+            "production_samples": np.int64(self.production_samples),
+            "positions_nm": self.walkers.positions_nm, "energies_kj": self.walkers.energies_kj,
+            "flow_file": np.str_(flow_path.name),
+            "rng": np.str_(json.dumps(self.streams.numpy.bit_generator.state)),
+            "torch_rng": self.streams.torch.get_state().numpy(),
+            "stats": np.str_(json.dumps(self._counters_json())),
+            **({} if self.dart_centres_nm is None else {"dart_centres_nm": self.dart_centres_nm,
+                                                        "basin_counts": self.basin_counts}),
+        })
+        self.store.prune_flows(keep=flow_path)
+
+    def restore(self, state: dict) -> None:
+        """Continue from a checkpoint: drop chunks it does not count, reload everything else."""
+        self.cycle, self.training_end_cycle = int(state["cycle"]), int(state["training_end_cycle"])
+        self.elapsed_s, self.next_chunk = float(state["elapsed_s"]), int(state["next_chunk"])
+        self.production_samples = int(state["production_samples"])
+        removed = self.store.discard_chunks_from(self.next_chunk)
+        if removed:
+            self.store.log(f"resume: removed {removed} chunk(s) written after the last checkpoint")
+        self.walkers = Walkers(np.array(state["positions_nm"]), np.array(state["energies_kj"]))
+        self.trainer.load_state_dict(torch.load(self.store.path / str(state["flow_file"]), weights_only=True))
+        self.streams.numpy.bit_generator.state = json.loads(str(state["rng"]))
+        self.streams.torch.set_state(torch.from_numpy(np.array(state["torch_rng"])))
+        # Fresh noise: the integrator's seed is fixed when its context is made, so a resumed run
+        # would otherwise replay the Langevin noise of the run's start.
+        self.evaluator = self._evaluator(self.settings.temperature_K, self.evaluator.platform.getName())
+        if "dart_centres_nm" in state:  # the first start's centres, not a re-minimization
+            self.dart_centres_nm = np.array(state["dart_centres_nm"])
+        self._build_moves()
+        if "basin_counts" in state:
+            self.basin_counts = np.array(state["basin_counts"])
+        counters = json.loads(str(state["stats"]))
+        for move in [self.local, self.flow_move, self.one_torsion] + ([self.seed_darts] if self.seed_darts else []):
+            move.load_state_dict(counters)
+        self._set_phase()
+        if not self.production:  # rebuild the training buffer from the recorded training states
+            for chunk in self.store.iter_chunks(upto=self.next_chunk):
+                pos = chunk["state_positions_nm"][~chunk["state_production"].astype(bool)]
+                if len(pos):
+                    self.trainer.add(pos)
+
+    # -- the loop -------------------------------------------------------------------------
+    def request_stop(self, *_args) -> None:
+        """Finish the current cycle, write a final checkpoint and return (SIGINT/SIGTERM)."""
+        self._stop = True
+
+    def run(self, budget: Budget, progress=None, stop_when=None) -> None:
+        """Run cycles until the budget is spent or a stop is requested; checkpoint at the end.
+
+        Parameters
+        ----------
+        budget : Budget
+        progress : callable, optional
+            Called as ``progress(sampler)`` after each cycle.
+        stop_when : callable, optional
+            Called as ``stop_when(sampler)`` after each checkpoint; True ends the run there.
+        """
+        previous = {sig: signal.signal(sig, self.request_stop) for sig in (signal.SIGINT, signal.SIGTERM)}
+        try:
+            if self.cycle == 0 and self.next_chunk == 0:
+                self.flush()  # checkpoint zero: resume works even before the first chunk
+            self._maybe_end_training()
+            while not self._stop and not budget.done(self.production_samples, self.elapsed_s):
+                self._cycle_start = time.perf_counter()
+                self.run_cycle()
+                self.elapsed_s += time.perf_counter() - self._cycle_start
+                self._maybe_end_training()
+                if progress is not None:
+                    progress(self)
+                if self.cycle % self.settings.cycles_per_chunk == 0:
+                    self.flush()
+                    if stop_when is not None and stop_when(self):
+                        self.store.log(f"cycle {self.cycle}: stopping early, the stop condition holds")
+                        break
+            self.flush()
+        finally:
+            for sig, handler in previous.items():
+                signal.signal(sig, handler)
+
+
+def _concat(blocks: list[dict]) -> dict:
+    if not blocks:
+        return {}
+    return {k: np.concatenate([b[k] for b in blocks]) for k in blocks[0]}
