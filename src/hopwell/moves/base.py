@@ -128,8 +128,3 @@ class Move(Protocol):
 
     def load_state_dict(self, state: dict) -> None: ...
 
-
-def metropolis(log_alpha: np.ndarray, rng: np.random.Generator) -> np.ndarray:
-    """Accept each proposal with probability ``min(1, exp(log_alpha))``; NaN is a rejection."""
-    log_alpha = np.asarray(log_alpha, dtype=float)
-    return np.log(rng.random(log_alpha.shape)) < np.nan_to_num(log_alpha, nan=-np.inf)

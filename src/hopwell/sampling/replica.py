@@ -95,13 +95,15 @@ class ReplicaSampler(Sampler):
                          platform=platform)
         self.training_end_cycle = 0  # nothing to train: production from the first cycle
 
-    def _build_moves(self) -> None:
+    def _segment_evaluators(self) -> list:
         """Rung 0's evaluator is the sampler's; rungs 1 and up get their own, seeded from the
         run's RNG (made anew on resume, so a resumed run does not replay the start's noise)."""
-        super()._build_moves()
         platform = self.evaluator.platform.getName()
         self.evaluators = [self.evaluator] + [self._evaluator(t, platform) for t in self.temperatures_K[1:]]
-        self.local = type(self.local)(self.evaluators, self.settings.langevin_steps, self._log)
+        return self.evaluators
+
+    def _build_moves(self) -> None:
+        super()._build_moves()
         self.local.label = "rung"
         self.swap = ReplicaSwap(self.temperatures_K, kT_kj)
 

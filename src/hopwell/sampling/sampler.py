@@ -151,7 +151,7 @@ class Sampler:
     def _build_moves(self) -> None:
         """The moves over the current evaluator and dart centres."""
         s = self.settings
-        self.local = LangevinSegment([self.evaluator], s.langevin_steps, self._log)
+        self.local = LangevinSegment(self._segment_evaluators(), s.langevin_steps, self._log)
         self.flow_move = FlowBlock(self.trainer, self.guard, self.evaluator, s.proposals_per_cycle)
         self.one_torsion = OneTorsion(self.trainer, self.guard, self.evaluator, s.single_moves_per_cycle)
         darts = (build_darts(self.zmat, self.trainer.all_moving, self.dart_centres_nm)
@@ -159,6 +159,15 @@ class Sampler:
         self.seed_darts = SeedDarts(darts, self.zmat, self.guard, self.evaluator, s.darts_per_cycle) if darts else None
         # Production walker states per dart region (index 0: outside every region).
         self.basin_counts = np.zeros(1 + (darts.n_centres if darts else 0), dtype=np.int64)
+
+    def _segment_evaluators(self) -> list[EnergyEvaluator]:
+        """The evaluators the local segments run on: the sampler's, for every walker."""
+        return [self.evaluator]
+
+    @property
+    def _all_moves(self) -> list:
+        """Every move built, scheduled or not: their counters are all checkpointed."""
+        return [self.local, self.flow_move, self.one_torsion] + ([self.seed_darts] if self.seed_darts else [])
 
     @property
     def moves(self) -> list:
@@ -214,9 +223,9 @@ class Sampler:
         production = self.production
         states = {k: [] for k in STATE_FIELDS}
         proposals = []
+        local, *others = self.moves
         for walker in range(self.n_walkers):
             which = np.array([walker])
-            local, *others = self.moves
             result = local.apply(self.walkers, which, self.streams)
             if result.frames_nm is not None:
                 self.trainer.add(result.frames_nm)
@@ -259,9 +268,8 @@ class Sampler:
 
     # -- persistence ----------------------------------------------------------------------
     def _counters_json(self) -> dict:
-        moves = [self.local, self.flow_move, self.one_torsion] + ([self.seed_darts] if self.seed_darts else [])
         out = {"dart": MoveCounters().to_json()}
-        for move in moves:
+        for move in self._all_moves:
             out.update(move.state_dict())
         return out
 
@@ -313,7 +321,7 @@ class Sampler:
         if "basin_counts" in state:
             self.basin_counts = np.array(state["basin_counts"])
         counters = json.loads(str(state["stats"]))
-        for move in [self.local, self.flow_move, self.one_torsion] + ([self.seed_darts] if self.seed_darts else []):
+        for move in self._all_moves:
             move.load_state_dict(counters)
         self._set_phase()
         if not self.production:  # rebuild the training buffer from the recorded training states
