@@ -248,3 +248,39 @@ def test_bad_input_raises():
         internal_to_cartesian(zmat, np.ones((2, 3)), np.ones((2, 2)), np.ones((2, 2)))
     with pytest.raises(ValueError, match="batch size"):
         internal_to_cartesian(zmat, np.ones((2, 3)), np.ones((2, 2)), np.ones((1, 1)))
+
+
+@pytest.mark.parametrize("name", ["ethanol", "methylcyclohexane", "ibuprofen"])
+def test_level_batched_nerf_matches_row_by_row_loop(name):
+    from hopwell.bench.coords import row_by_row_nerf
+
+    _, zmat, positions_nm, _ = _molecule(SMILES[name])
+    ic = cartesian_to_internal(zmat, positions_nm)
+    rng = np.random.default_rng(4)
+    # Far from the input structures too: torsions anywhere, angles and bonds perturbed.
+    q = [(ic.bonds_nm * torch.from_numpy(rng.uniform(0.8, 1.2, ic.bonds_nm.shape))).requires_grad_(),
+         (ic.angles_rad + torch.from_numpy(rng.normal(0, 0.2, ic.angles_rad.shape))).requires_grad_(),
+         torch.from_numpy(rng.uniform(-np.pi, np.pi, ic.torsions_rad.shape)).requires_grad_()]
+    weights = torch.from_numpy(rng.normal(size=positions_nm.shape))
+    fast, _ = internal_to_cartesian(zmat, *q)
+    fast_grads = torch.autograd.grad((fast * weights).sum(), q)
+    slow = row_by_row_nerf(zmat, *q)
+    slow_grads = torch.autograd.grad((slow * weights).sum(), q)
+    # Source: the previous one-row-at-a-time NeRF, kept in hopwell.bench.coords as the slow path.
+    torch.testing.assert_close(fast, slow, rtol=0, atol=1e-12)
+    for g_fast, g_slow in zip(fast_grads, slow_grads):
+        torch.testing.assert_close(g_fast, g_slow, rtol=0, atol=1e-10)
+    assert zmat.placement_levels.max() < zmat.n_atoms - 3  # fewer steps than rows
+
+
+@pytest.mark.parametrize("name", ["butane", "ibuprofen"])
+def test_placement_levels_follow_references(name):
+    _, zmat, _, _ = _molecule(SMILES[name], n_conformers=1)
+    levels = zmat.placement_levels
+    assert levels is zmat.placement_levels  # computed once per Z-matrix
+    level_of = {int(atom): int(levels[row]) for row, atom in enumerate(zmat.order)}
+    assert list(levels[:3]) == [0, 0, 0]
+    for row in range(3, zmat.n_atoms):
+        refs = [int(r[row]) for r in (zmat.bond_ref, zmat.angle_ref, zmat.torsion_ref)]
+        assert levels[row] == 1 + max(level_of[r] for r in refs)
+    assert set(levels) == set(range(levels.max() + 1))

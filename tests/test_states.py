@@ -38,6 +38,68 @@ def test_wells_found_where_the_density_has_them():
     assert agreement > 0.99
 
 
+def _two_well_samples(rng, n, rare_fraction, rare_deg, common_deg=180.0):
+    """Torsions (rad) from von Mises wells (numpy's sampler), ``rare_fraction`` near ``rare_deg``."""
+    rare = rng.random(n) < rare_fraction
+    return rng.vonmises(np.deg2rad(np.where(rare, rare_deg, common_deg)), 40.0), rare
+
+
+@pytest.mark.parametrize("rare_fraction", [0.004, 0.0005])
+def test_amide_keeps_a_rare_cis_state(rare_fraction):
+    # N-methylacetamide: one state torsion, about the amide C-N bond. Its cis isomer at 0.4%
+    # (the fraction measured in a short run) or 0.05% of the samples is below the wells' mass
+    # floor (1%) and the states' population floor (0.5%), yet must be a state of its own.
+    mol = Chem.AddHs(Chem.MolFromSmiles("CC(=O)NC"))
+    (atoms, period), = st.state_torsions(mol)
+    assert atoms[1:3] == (1, 3) and period == 1  # the carbonyl C and the N
+    x, cis = _two_well_samples(np.random.default_rng(5), 20000, rare_fraction, 0.0)
+    model = st.torsion_model(mol, x[:, None])
+    assert model.names == ("180", "0", "other")
+    np.testing.assert_allclose(model.edges[0], np.deg2rad([-90.0, 90.0]))
+    assert np.array_equal(model.assign(x[:, None]), cis.astype(int))
+
+
+def test_cis_trans_wells_only_for_amide_like_bonds():
+    # The same rare well on n-butane's C-C-C-C torsion is merged into its neighbour (data
+    # wells), while an amide with no cis sample still has both wells (no cis state: a later
+    # cis sample is "other").
+    rng = np.random.default_rng(6)
+    x, _ = _two_well_samples(rng, 20000, 0.004, 0.0)
+    butane = st.torsion_model(Chem.AddHs(Chem.MolFromSmiles("CCCC")), x[:, None])
+    assert butane.names == ("180", "other") and len(butane.edges[0]) == 0
+    amide = Chem.AddHs(Chem.MolFromSmiles("CC(=O)NC"))
+    trans_only = rng.vonmises(np.pi, 40.0, 5000)[:, None]
+    model = st.torsion_model(amide, trans_only)
+    assert model.names == ("180", "other") and len(model.edges[0]) == 2
+    assert model.assign(np.array([[0.1], [np.pi]])).tolist() == [1, 0]
+    # Ester and thioamide bonds are amide-like (STIFF_BOND); N,N-dimethylacetamide's cis and
+    # trans are one conformer (period 2), so its wells come from the data.
+    for smiles, expected in (("CC(=O)OC", [True]), ("CC(=S)NC", [True]), ("CC(=O)N(C)C", [False]),
+                             ("CCCC", [False])):
+        mol = Chem.AddHs(Chem.MolFromSmiles(smiles))
+        assert st.cis_trans_torsions(mol, st.state_torsions(mol)) == expected, smiles
+
+
+def test_rare_amide_isomer_joins_the_most_populated_combination():
+    # Two torsions: the amide C-N and the N-CH2 of N-benzyl-N-methylacetamide (the demo
+    # molecule). The cis samples (0.3%) spread over two N-CH2 wells; the state added for cis is
+    # the more populated of those two combinations, the other stays "other".
+    mol = Chem.AddHs(Chem.MolFromSmiles("CC(=O)N(C)Cc1ccccc1"))
+    torsions = st.state_torsions(mol)
+    assert st.cis_trans_torsions(mol, torsions) == [True, False, False]
+    rng = np.random.default_rng(7)
+    n = 40000
+    amide, cis = _two_well_samples(rng, n, 0.003, 0.0)
+    side = rng.vonmises(np.deg2rad(np.where(rng.random(n) < 0.7, 90.0, -90.0)), 20.0)
+    ring = rng.vonmises(0.0, 20.0, n)
+    model = st.torsion_model(mol, np.stack([amide, side, ring], axis=1))
+    labels = model.assign(np.stack([amide, side, ring], axis=1))
+    cis_names = [name for name in model.names if name.split()[0] == "0"]
+    assert len(cis_names) == 1 and cis_names[0].split()[1] == "+90"
+    assert np.all(labels[cis & (side > 0)] == model.names.index(cis_names[0]))
+    assert np.all(labels[cis & (side < 0)] == len(model.names) - 1)
+
+
 def test_state_torsions_match_mdtraj_and_fold_symmetric_rings():
     mol = Chem.AddHs(Chem.MolFromSmiles("CCc1ccc(C)cc1"))
     AllChem.EmbedMultipleConfs(mol, numConfs=3, randomSeed=2)

@@ -11,6 +11,7 @@ from hopwell.analysis.stats import (
     count_transitions,
     free_energy_differences,
     integrated_autocorrelation_time,
+    jeffreys_interval,
     kish_ess,
     population_estimate,
     split_rhat,
@@ -83,11 +84,19 @@ def coverage_sets():
     return thresholded_ar1(np.random.default_rng(2024), 400, 4, 5000, 0.9, 0.3)
 
 
-def coverage(sets, rng, n_boot=200, **kwargs):
+def percentile_interval(result):
+    """The bootstrap's own percentile interval (before the Jeffreys floor), from the replicas."""
+    alpha = 1.0 - result.confidence
+    return np.quantile(result.replicates, [alpha / 2.0, 1.0 - alpha / 2.0], axis=0)
+
+
+def coverage(sets, rng, n_boot=200, truth=0.3, bootstrap_only=False, **kwargs):
+    """How many data sets' state-1 intervals hold ``truth``."""
     hits = []
     for d in sets:
         r = population_estimate(d, 2, rng, n_boot=n_boot, **kwargs)
-        hits.append(r.lower[1] <= 0.3 <= r.upper[1])
+        lower, upper = percentile_interval(r) if bootstrap_only else (r.lower, r.upper)
+        hits.append(lower[1] <= truth <= upper[1])
     return int(np.sum(hits))
 
 
@@ -99,8 +108,10 @@ def test_block_bootstrap_coverage(coverage_sets):
 
 
 def test_iid_bootstrap_undercovers(coverage_sets):
-    # Ignoring the correlation (blocks of one sample) must fail the same test.
-    hits = coverage(coverage_sets[:30], np.random.default_rng(2), n_boot=100, block_length=1)
+    # Ignoring the correlation (blocks of one sample) must fail the same test. The bootstrap's
+    # own interval is judged: the Jeffreys floor, sized by the inefficiency, would hide it.
+    hits = coverage(coverage_sets[:30], np.random.default_rng(2), n_boot=100, block_length=1,
+                    bootstrap_only=True)
     assert stats.binomtest(hits, 30, 0.95).pvalue < 1e-6
 
 
@@ -108,6 +119,56 @@ def test_walker_resampling_is_conservative(coverage_sets):
     hits = coverage(coverage_sets[:200], np.random.default_rng(3), resample_walkers=True)
     # One-sided binomial test: coverage not below 95 %.
     assert stats.binomtest(hits, 200, 0.95, alternative="less").pvalue > 0.01
+
+
+def jeffreys_by_scipy(p, n_eff, confidence=0.95):
+    """Jeffreys interval from scipy.stats.beta.ppf, bounds 0 at x = 0 and 1 at x = n
+    (Brown, Cai & DasGupta 2001, Statist. Sci. 16:101, section 4.1.2)."""
+    x, alpha = p * n_eff, 1.0 - confidence
+    lower = stats.beta.ppf(alpha / 2, x + 0.5, n_eff - x + 0.5) if x > 0 else 0.0
+    upper = stats.beta.ppf(1 - alpha / 2, x + 0.5, n_eff - x + 0.5) if x < n_eff else 1.0
+    return lower, upper
+
+
+@pytest.mark.parametrize("p, n_eff", [(0.0, 50.0), (1.0, 50.0), (0.004, 287.3), (0.3, 1000.0),
+                                      (1.0 / 7.0, 7.0), (0.996, 979.25)])
+def test_jeffreys_interval_matches_scipy_beta(p, n_eff):
+    lower, upper = jeffreys_interval(np.array([p]), n_eff, 0.95)
+    assert (lower[0], upper[0]) == pytest.approx(jeffreys_by_scipy(p, n_eff), rel=1e-10, abs=1e-15)
+    assert (lower[0] > 0) == (p > 0) and (upper[0] < 1) == (p < 1)
+
+
+def test_rare_state_interval_never_touches_the_boundary():
+    # The measured failure, rebuilt: 0.4% of the samples in a rare state, all in one dwell of
+    # one walker of four. Most replicas miss the dwell, so the bootstrap's own interval claims
+    # population 1 possible for the common state and 0 for the rare one, which the samples
+    # contradict. The reported bounds there must be the Jeffreys bounds on
+    # min(ess, p (1 - p) / var) samples (var: the replicas' variance), computed with scipy.
+    d = np.zeros((4, 5000), dtype=int)
+    d[0, 2000:2080] = 1
+    r = population_estimate(d, 2, np.random.default_rng(3), n_boot=1000)
+    np.testing.assert_allclose(r.populations, [0.996, 0.004])
+    lower, upper = percentile_interval(r)
+    assert upper[0] == 1.0 and lower[1] == 0.0  # the collapse the floor must undo
+    size = min(r.ess, 0.004 * 0.996 / r.replicates[:, 1].var())
+    common, rare = jeffreys_by_scipy(0.996, size), jeffreys_by_scipy(0.004, size)
+    assert r.upper[0] == pytest.approx(common[1], rel=1e-10) and r.upper[0] < 1.0
+    assert r.lower[1] == pytest.approx(rare[0], rel=1e-10) and r.lower[1] > 0.0
+    # The other bounds are the more cautious of the two intervals.
+    assert r.lower[0] == pytest.approx(min(lower[0], common[0]))
+    assert r.upper[1] == pytest.approx(max(upper[1], rare[1]))
+
+
+def test_rare_state_coverage_restored_by_the_floor():
+    # 400 data sets of 4 walkers x 500 independent samples with P(state 1) = 0.002: about four
+    # expected counts, so the percentile bootstrap, which cannot put a bound between the
+    # discrete replica values, covers too rarely; the floored intervals must not (one-sided
+    # binomial tests, scipy.stats.binomtest).
+    sets = thresholded_ar1(np.random.default_rng(10), 400, 4, 500, 0.0, 0.002)
+    floored = coverage(sets, np.random.default_rng(1), truth=0.002)
+    percentile = coverage(sets, np.random.default_rng(1), truth=0.002, bootstrap_only=True)
+    assert stats.binomtest(percentile, 400, 0.95, alternative="less").pvalue < 1e-3
+    assert stats.binomtest(floored, 400, 0.95, alternative="less").pvalue > 0.01
 
 
 def test_trapped_walkers():
@@ -118,6 +179,8 @@ def test_trapped_walkers():
     outer = population_estimate(d, 2, rng, n_boot=500, resample_walkers=True)
     assert inner.upper[1] - inner.lower[1] < 0.05
     assert outer.upper[1] - outer.lower[1] > 0.5
+    # Both states were seen and neither holds every sample: no bound at 0 or 1.
+    assert 0 < outer.lower[1] < 0.25 and 0.75 < outer.upper[1] < 1
     assert split_rhat(d) > 1.5
 
 
@@ -153,8 +216,10 @@ def test_free_energy_interval_matches_population_interval():
         return -KT * np.log(s1 / (1.0 - s1))
 
     assert dg.values[1] == pytest.approx(dg_of(r.populations[1]))
-    assert dg.lower[1] == pytest.approx(dg_of(r.upper[1]), abs=2e-3)
-    assert dg.upper[1] == pytest.approx(dg_of(r.lower[1]), abs=2e-3)
+    # Free-energy intervals are percentiles over the same replicas (no Jeffreys floor).
+    lower, upper = percentile_interval(r)
+    assert dg.lower[1] == pytest.approx(dg_of(upper[1]), abs=2e-3)
+    assert dg.upper[1] == pytest.approx(dg_of(lower[1]), abs=2e-3)
     flipped = free_energy_differences(r, KT, reference=1)
     np.testing.assert_allclose(flipped.values[0], -dg.values[1])
     np.testing.assert_allclose(flipped.replicates[:, 0], -dg.replicates[:, 1])
@@ -242,6 +307,8 @@ GOOD = np.zeros((2, 10), dtype=int)
         lambda: split_rhat(np.zeros(10)),
         lambda: kish_ess([0.0, np.nan]),
         lambda: kish_ess([-np.inf, -np.inf]),
+        lambda: jeffreys_interval([0.5], 0.0, 0.95),
+        lambda: jeffreys_interval([1.5], 10.0, 0.95),
         lambda: free_energy_differences(population_estimate(GOOD, 2, GEN, n_boot=5), -1.0),
         lambda: free_energy_differences(population_estimate(GOOD, 2, GEN, n_boot=5), KT, 2),
     ],

@@ -1,5 +1,8 @@
 """Conformer states: torsion wells found from the data, or peptide backbone regions.
 
+Torsions about amide-like bonds are the exception to "found from the data": they always get a
+cis and a trans well, so that a rare isomer is never folded into the common one.
+
 All functions are pure: torsion values in, state indices out. Geometry comes from mdtraj.
 
 Backbone regions (phi, psi in degrees; conventions vary, these are hopwell's; the code is
@@ -29,6 +32,7 @@ import mdtraj as md
 import numpy as np
 from rdkit import Chem
 
+from hopwell.coords.torsions import STIFF_BOND
 from hopwell.systems.backbone import BACKBONE_STATES, backbone_state
 from hopwell.systems.builder import rotatable_bonds
 
@@ -36,6 +40,10 @@ N_BINS = 72  # 5-degree histogram bins for the torsion marginals
 SMOOTH_DEG = 15.0  # width of the wrapped Gaussian smoothing the marginals
 MIN_WELL_MASS = 0.01  # wells with less pooled mass are merged into a neighbour
 POPULATION_FLOOR = 0.005  # combinations below this are reported together as "other"
+# Well boundaries of a torsion about a partial double bond (amide, ester: STIFF_BOND): cis
+# within 90 degrees of 0, trans otherwise (common practice). Fixed, not found from the data,
+# so a rare isomer keeps its own well however few samples reach it.
+CIS_TRANS_EDGES_RAD = np.radians([-90.0, 90.0])
 
 
 def state_torsions(mol: Chem.Mol) -> list[tuple[tuple[int, int, int, int], int]]:
@@ -59,6 +67,17 @@ def state_torsions(mol: Chem.Mol) -> list[tuple[tuple[int, int, int, int], int]]
                 period = 2
         out.append(((ends[0][0], j, k, ends[1][0]), period))
     return out
+
+
+def cis_trans_torsions(mol: Chem.Mol, torsions) -> list[bool]:
+    """Which of ``torsions`` (as from :func:`state_torsions`) get fixed cis and trans wells.
+
+    Those about a partial double bond (:data:`hopwell.coords.torsions.STIFF_BOND`) with
+    period 1; with period 2 (two equivalent far substituents, as in N,N-dimethylacetamide)
+    cis and trans are one conformer, and the wells are found from the data as for any torsion.
+    """
+    stiff = {frozenset(match[0::2]) for match in mol.GetSubstructMatches(STIFF_BOND)}
+    return [period == 1 and frozenset(atoms[1:3]) in stiff for atoms, period in torsions]
 
 
 def fold(torsion_rad: np.ndarray, period: int) -> np.ndarray:
@@ -149,8 +168,30 @@ def backbone_model(topology: md.Topology) -> StateModel | None:
     return StateModel("backbone", BACKBONE_STATES, ((tuple(phi[0]), 1), (tuple(psi[0]), 1)))
 
 
+def _kept_combinations(wells: np.ndarray, cis_trans: list[bool]) -> list[tuple]:
+    """Well combinations that become states, most populated first.
+
+    Those holding at least ``POPULATION_FLOOR`` of the samples, and for each observed well of a
+    cis/trans torsion that none of those contains, the most populated combination holding it,
+    so that a rare amide isomer is reported as a state of its own rather than as "other".
+    """
+    combos, counts = np.unique(wells, axis=0, return_counts=True)
+    order = np.argsort(-counts, kind="stable")
+    combos = [tuple(int(w) for w in combos[i]) for i in order]
+    keep = {c for c, n in zip(combos, counts[order]) if n / len(wells) >= POPULATION_FLOOR}
+    for t in np.flatnonzero(cis_trans):
+        for combo in combos:  # most populated first
+            if combo[t] not in {k[t] for k in keep}:
+                keep.add(combo)
+    return [c for c in combos if c in keep]
+
+
 def torsion_model(mol: Chem.Mol, dihedrals_rad: np.ndarray) -> StateModel:
     """Conformer states as combinations of torsion wells found in the pooled samples.
+
+    Torsions about partial double bonds (:func:`cis_trans_torsions`) always get a cis and a
+    trans well (:data:`CIS_TRANS_EDGES_RAD`), and each of their observed wells is in some state
+    (:func:`_kept_combinations`).
 
     Parameters
     ----------
@@ -161,12 +202,12 @@ def torsion_model(mol: Chem.Mol, dihedrals_rad: np.ndarray) -> StateModel:
     torsions = state_torsions(mol)
     if not torsions:
         return StateModel("torsions", ("rigid", "other"), (), (), {(): 0})
-    edges = tuple(well_edges(dihedrals_rad[:, t], p) for t, (_, p) in enumerate(torsions))
+    cis_trans = cis_trans_torsions(mol, torsions)
+    edges = tuple(CIS_TRANS_EDGES_RAD if fixed else well_edges(dihedrals_rad[:, t], p)
+                  for t, ((_, p), fixed) in enumerate(zip(torsions, cis_trans)))
     wells = np.stack([assign_wells(dihedrals_rad[:, t], edges[t], p)
                       for t, (_, p) in enumerate(torsions)], axis=1)
-    combos, counts = np.unique(wells, axis=0, return_counts=True)
-    order = np.argsort(-counts, kind="stable")
-    kept = [tuple(combos[i]) for i in order if counts[i] / len(wells) >= POPULATION_FLOOR]
+    kept = _kept_combinations(wells, cis_trans)
     names = []
     for combo in kept:
         members = np.all(wells == np.array(combo), axis=1)

@@ -35,7 +35,8 @@ class PopulationResult:
     populations : ndarray, shape (n_states,)
         Pooled fraction (or self-normalised weight) of samples in each state.
     lower, upper : ndarray, shape (n_states,)
-        Percentile bootstrap interval at level ``confidence``.
+        Interval at level ``confidence``: the percentile bootstrap interval, widened by
+        :func:`floored_interval` where :func:`population_estimate` or the reweighting made it.
     replicates : ndarray, shape (n_boot, n_states)
         Bootstrap replicate populations; each row sums to one.
     confidence : float
@@ -192,6 +193,90 @@ def _interval(replicates, confidence):
     return np.quantile(replicates, [alpha / 2.0, 1.0 - alpha / 2.0], axis=0)
 
 
+def jeffreys_interval(populations, n_eff, confidence):
+    """Jeffreys interval of binomial proportions observed on ``n_eff`` effective samples.
+
+    The equal-tailed interval of the Beta(x + 1/2, n_eff - x + 1/2) posterior with
+    x = ``populations * n_eff``, its lower bound set to 0 where x = 0 and its upper bound to 1
+    where x = n_eff (Brown, Cai & DasGupta 2001, Statist. Sci. 16:101, section 4.1.2). A
+    correlated series of n samples with statistical inefficiency g carries about as much
+    information as n / g independent ones, so x need not be an integer.
+
+    Parameters
+    ----------
+    populations : array_like, shape (n_states,)
+        Observed fractions in [0, 1].
+    n_eff : float or array_like, shape (n_states,)
+        Effective sample size, > 0.
+    confidence : float
+        Level of the interval, strictly between 0 and 1.
+
+    Returns
+    -------
+    lower, upper : numpy.ndarray, shape (n_states,)
+    """
+    p = np.asarray(populations, dtype=float)
+    n_eff = np.asarray(n_eff, dtype=float)
+    if not np.all(np.isfinite(n_eff) & (n_eff > 0)):
+        raise ValueError(f"n_eff must be positive and finite; got {n_eff}")
+    if not np.all(np.isfinite(p) & (p >= 0) & (p <= 1)):
+        raise ValueError(f"populations must lie in [0, 1]; got {p}")
+    alpha = 1.0 - confidence
+    x = p * n_eff
+    lower = np.where(p > 0, special.betaincinv(x + 0.5, n_eff - x + 0.5, alpha / 2.0), 0.0)
+    upper = np.where(p < 1, special.betaincinv(x + 0.5, n_eff - x + 0.5, 1.0 - alpha / 2.0), 1.0)
+    return lower, upper
+
+
+def _variance_matched_size(populations, replicates, n_eff):
+    """Per state, ``min(n_eff, p (1 - p) / var)`` with var the replicas' variance of p.
+
+    p (1 - p) / var is the number of independent samples that would give a proportion the
+    replicas' variance (the design-effect view of an effective sample size, common practice).
+    It is smaller than ``n_eff`` where the bootstrap sees more noise than the inefficiency
+    does (walkers that disagree, resampled as units). States with var = 0 keep ``n_eff``.
+    """
+    p = np.asarray(populations, dtype=float)
+    var = np.var(replicates, axis=0)
+    spread = var > 0
+    return np.where(spread, np.minimum(n_eff, p * (1.0 - p) / np.where(spread, var, 1.0)), n_eff)
+
+
+def floored_interval(populations, replicates, n_eff, confidence):
+    """Percentile interval of bootstrap replicas, widened to hold a Jeffreys interval.
+
+    A resampling interval collapses onto 0 (or 1) when most replicas miss a rare state (or
+    hold nothing else), although the samples show that the state (or another) exists. Each
+    bound here is the more cautious of the percentile bound and the bound of
+    :func:`jeffreys_interval` on ``min(n_eff, p (1 - p) / var)`` samples (var: the replicas'
+    variance of p), except that a percentile bound at 0 or 1 is replaced by the Jeffreys
+    bound, which is 0 only for a state never seen and 1 only for a state holding every
+    sample. The smaller size keeps the Jeffreys interval from being narrower than a
+    bootstrap that saw more noise than ``n_eff`` implies; only a bound at 0 or 1 can move
+    inwards (four walkers trapped two and two in two states, resampled as units: the
+    bootstrap's [0, 1] becomes the Jeffreys interval on about 4 samples, [0.12, 0.88]).
+
+    Parameters
+    ----------
+    populations : array_like, shape (n_states,)
+        The estimate.
+    replicates : array_like, shape (n_boot, n_states)
+        Bootstrap replicas of the populations.
+    n_eff : float or array_like, shape (n_states,)
+        Effective sample size of the estimate (of each state's fraction).
+    confidence : float
+
+    Returns
+    -------
+    lower, upper : numpy.ndarray, shape (n_states,)
+    """
+    lower, upper = _interval(replicates, confidence)
+    size = _variance_matched_size(populations, replicates, n_eff)
+    j_lower, j_upper = jeffreys_interval(populations, size, confidence)
+    return (np.where(lower > 0, np.minimum(lower, j_lower), j_lower),
+            np.where(upper < 1, np.maximum(upper, j_upper), j_upper))
+
+
 def circular_block_counts(onehot, block, n_rep, rng):
     """State counts of ``n_rep`` circular block resamples of one walker.
 
@@ -228,6 +313,10 @@ def population_estimate(states, n_states, rng, n_boot=1000, confidence=0.95,
     every replica keeps each walker's length; this assumes independent walkers
     that each sample the same equilibrium.  Intervals are slightly narrower
     than nominal when walkers span only a few blocks (see ``BLOCK_FACTOR``).
+    Each interval is then widened to hold a Jeffreys interval on at most
+    ``n / g`` effective samples (:func:`floored_interval`), so a state seen at
+    least once never gets a lower bound of 0, nor one that missed some samples
+    an upper bound of 1.
 
     With ``resample_walkers=True`` (and at least two walkers) walkers are first
     drawn with replacement as units and blocks are then resampled within
@@ -282,9 +371,9 @@ def population_estimate(states, n_states, rng, n_boot=1000, confidence=0.95,
         rows = np.nonzero(chosen == j)[0]
         np.add.at(counts, rows, circular_block_counts(oh, block, len(rows), rng))
     reps = counts / counts.sum(axis=1, keepdims=True)
-    lo, hi = _interval(reps, confidence)
     n = int(lengths.sum())
     pooled = np.sum([oh.sum(axis=0) for oh in onehots], axis=0) / n
+    lo, hi = floored_interval(pooled, reps, n / g, confidence)
     return PopulationResult(pooled, lo, hi, reps, confidence, n, g, block, n / g)
 
 

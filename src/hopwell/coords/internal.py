@@ -29,10 +29,13 @@ bond); such molecules need care from the caller.
 from __future__ import annotations
 
 import heapq
+import itertools
 import math
 from collections import deque
+from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import NamedTuple, Sequence
+from functools import cached_property
+from typing import NamedTuple
 
 import numpy as np
 import torch
@@ -70,6 +73,19 @@ class ZMatrix:
     def n_atoms(self) -> int:
         """Number of atoms."""
         return int(self.order.shape[0])
+
+    @cached_property
+    def placement_levels(self) -> np.ndarray:
+        """Dependency depth of each placement row, shape (n_atoms,) (read-only, computed once).
+
+        Rows 0, 1 and 2 are level 0; a later row is one level above the highest of its bond,
+        angle and torsion references, so all rows of one level can be placed at once.
+        """
+        return _placement_levels(self)
+
+    @cached_property
+    def _plan(self) -> _Plan:
+        return _plan_placement(self)
 
 
 class InternalCoords(NamedTuple):
@@ -251,6 +267,71 @@ def build_zmatrix(
     return ZMatrix(*arrays)
 
 
+def _placement_levels(zmat: ZMatrix) -> np.ndarray:
+    """Dependency depth of each placement row; see :attr:`ZMatrix.placement_levels`."""
+    level_of_atom = np.zeros(zmat.n_atoms, dtype=np.int64)
+    for row in range(3, zmat.n_atoms):
+        refs = (zmat.bond_ref[row], zmat.angle_ref[row], zmat.torsion_ref[row])
+        level_of_atom[zmat.order[row]] = 1 + level_of_atom[list(refs)].max()
+    levels = level_of_atom[zmat.order]
+    levels.setflags(write=False)
+    return levels
+
+
+class _Level(NamedTuple):
+    """One batch of NeRF placements: buffer slots ``start:stop`` from references ``refs``."""
+
+    start: int
+    stop: int
+    refs: torch.Tensor  # (3 * (stop - start),): slots of bond, then angle, then torsion refs
+
+
+class _Plan(NamedTuple):
+    """Index tensors for the conversions, built once per Z-matrix by :func:`_plan_placement`.
+
+    The NeRF buffer holds the atoms sorted by the level of their placement row (rows 0, 1, 2
+    first, then by row within a level); a "slot" is a position in it.
+    """
+
+    atom_slot: torch.Tensor  # (n_atoms,) slot of each atom
+    bond_cols: torch.Tensor  # (n_atoms - 3,) bonds_nm column of slots 3..n-1
+    angle_cols: torch.Tensor  # (n_atoms - 3,) angles_rad column of slots 3..n-1
+    torsion_cols: torch.Tensor  # (n_atoms - 3,) torsions_rad column of slots 3..n-1
+    levels: tuple[_Level, ...]
+    principal_cols: torch.Tensor  # (n_atoms - 3,) torsion row each row is measured from
+    is_principal: torch.Tensor  # (n_atoms - 3,) bool
+    atom_refs: torch.Tensor  # order, bond_ref[1:], angle_ref[2:], torsion_ref[3:] concatenated
+
+
+def _plan_placement(zmat: ZMatrix) -> _Plan:
+    n = zmat.n_atoms
+    levels = zmat.placement_levels
+    rows_by_slot = np.argsort(levels, kind="stable")
+    slot_of_row = np.empty(n, dtype=np.int64)
+    slot_of_row[rows_by_slot] = np.arange(n)
+    slot_of_atom = np.empty(n, dtype=np.int64)
+    slot_of_atom[zmat.order] = slot_of_row
+    later = rows_by_slot[3:]
+    bounds = np.searchsorted(levels[rows_by_slot], np.arange(1, levels.max() + 2))
+    plan_levels = tuple(
+        _Level(int(start), int(stop), torch.as_tensor(np.concatenate(
+            [slot_of_atom[ref[rows_by_slot[start:stop]]]
+             for ref in (zmat.bond_ref, zmat.angle_ref, zmat.torsion_ref)])))
+        for start, stop in itertools.pairwise(bounds))
+    own = np.arange(n - 3)
+    return _Plan(
+        atom_slot=torch.as_tensor(slot_of_atom),
+        bond_cols=torch.as_tensor(later - 1),
+        angle_cols=torch.as_tensor(later - 2),
+        torsion_cols=torch.as_tensor(later - 3),
+        levels=plan_levels,
+        principal_cols=torch.as_tensor(np.where(zmat.is_principal, own, zmat.principal_of)),
+        is_principal=torch.as_tensor(zmat.is_principal.copy()),
+        atom_refs=torch.as_tensor(np.concatenate(
+            [zmat.order, zmat.bond_ref[1:], zmat.angle_ref[2:], zmat.torsion_ref[3:]])),
+    )
+
+
 def _wrap(angle_rad: torch.Tensor) -> torch.Tensor:
     """Wrap angles to [-pi, pi)."""
     wrapped = torch.remainder(angle_rad + math.pi, 2.0 * math.pi) - math.pi
@@ -259,12 +340,6 @@ def _wrap(angle_rad: torch.Tensor) -> torch.Tensor:
 
 def _log_jacobian(bonds_nm: torch.Tensor, angles_rad: torch.Tensor) -> torch.Tensor:
     return 2.0 * torch.log(bonds_nm).sum(-1) + torch.log(torch.sin(angles_rad)).sum(-1)
-
-
-def _principal_index(zmat: ZMatrix) -> torch.Tensor:
-    """Torsion row each torsion row is measured from (itself when principal)."""
-    own = np.arange(zmat.n_atoms - 3)
-    return torch.tensor(np.where(zmat.is_principal, own, zmat.principal_of))
 
 
 def _as_batch(name: str, value, shape: tuple[int, ...]) -> torch.Tensor:
@@ -292,9 +367,9 @@ def cartesian_to_internal(zmat: ZMatrix, positions_nm: torch.Tensor | np.ndarray
         the IUPAC sign for principal rows and the offset from the principal dihedral otherwise;
         ``log_jacobian`` (batch,), as in :func:`internal_to_cartesian`.
     """
-    x = _as_batch("positions_nm", positions_nm, (zmat.n_atoms, 3))
-    atom, b, a, t = (x[:, torch.tensor(idx)] for idx in
-                     (zmat.order, zmat.bond_ref[1:], zmat.angle_ref[2:], zmat.torsion_ref[3:]))
+    n, plan = zmat.n_atoms, zmat._plan
+    x = _as_batch("positions_nm", positions_nm, (n, 3))
+    atom, b, a, t = x[:, plan.atom_refs].split([n, n - 1, n - 2, n - 3], dim=1)
     bond_vec = atom[:, 1:] - b
     bonds_nm = torch.linalg.norm(bond_vec, dim=-1)
     u, v = bond_vec[:, 1:], a - b[:, 1:]
@@ -304,9 +379,8 @@ def cartesian_to_internal(zmat: ZMatrix, positions_nm: torch.Tensor | np.ndarray
     n2 = torch.cross(b1, b2, dim=-1)
     dihedral = torch.atan2(torch.linalg.norm(b1, dim=-1) * (b0 * n2).sum(-1),
                            (torch.cross(b0, b1, dim=-1) * n2).sum(-1))
-    reference = dihedral[:, _principal_index(zmat)]
-    is_principal = torch.tensor(zmat.is_principal)
-    torsions_rad = _wrap(torch.where(is_principal, dihedral, dihedral - reference))
+    reference = dihedral[:, plan.principal_cols]
+    torsions_rad = _wrap(torch.where(plan.is_principal, dihedral, dihedral - reference))
     return InternalCoords(bonds_nm, angles_rad, torsions_rad, _log_jacobian(bonds_nm, angles_rad))
 
 
@@ -320,7 +394,8 @@ def internal_to_cartesian(
 
     The first placed atom goes to the origin, the second on +x, the third in the xy-plane with
     y > 0; the rest follow by the natural extension reference frame (NeRF) construction
-    (Parsons et al., J. Comput. Chem. 26:1063, 2005).
+    (Parsons et al., J. Comput. Chem. 26:1063, 2005), applied to all rows of one
+    :attr:`ZMatrix.placement_levels` level at once.
 
     The log-Jacobian is that of Cartesian volume with respect to internal coordinates, the six
     rigid-body coordinates integrated out as constants:
@@ -347,30 +422,40 @@ def internal_to_cartesian(
         float64, indexed by atom (not by placement row).
     log_jacobian : torch.Tensor, shape (batch,)
     """
-    n = zmat.n_atoms
+    n, plan = zmat.n_atoms, zmat._plan
     bonds = _as_batch("bonds_nm", bonds_nm, (n - 1,))
     angles = _as_batch("angles_rad", angles_rad, (n - 2,))
     torsions = _as_batch("torsions_rad", torsions_rad, (n - 3,))
     if not bonds.shape[0] == angles.shape[0] == torsions.shape[0]:
         raise ValueError("bonds_nm, angles_rad and torsions_rad must share the batch size")
-    phi = torch.where(torch.tensor(zmat.is_principal), torsions,
-                      torsions + torsions[:, _principal_index(zmat)])
+    phi = torch.where(plan.is_principal, torsions, torsions + torsions[:, plan.principal_cols])
     zero = torch.zeros_like(bonds[:, 0])
-    pos: list[torch.Tensor | None] = [None] * n
-    pos[zmat.order[0]] = torch.stack([zero, zero, zero], dim=-1)
-    pos[zmat.order[1]] = torch.stack([bonds[:, 0], zero, zero], dim=-1)
+    first = torch.stack([zero, zero, zero], dim=-1)
+    second = torch.stack([bonds[:, 0], zero, zero], dim=-1)
     # Third atom: direction to its angle reference is +x from atom 0, -x from atom 1.
-    sign = 1.0 if zmat.bond_ref[2] == zmat.order[0] else -1.0
+    from_first = zmat.bond_ref[2] == zmat.order[0]
     r, theta = bonds[:, 1], angles[:, 0]
-    offset = torch.stack([sign * r * torch.cos(theta), r * torch.sin(theta), zero], dim=-1)
-    pos[zmat.order[2]] = pos[zmat.bond_ref[2]] + offset
-    for row in range(3, n):
-        c, b, a = pos[zmat.bond_ref[row]], pos[zmat.angle_ref[row]], pos[zmat.torsion_ref[row]]
-        r, theta, tau = bonds[:, row - 1:row], angles[:, row - 2:row - 1], phi[:, row - 3:row - 2]
-        bc = torch.nn.functional.normalize(c - b, dim=-1)
-        normal = torch.nn.functional.normalize(torch.cross(b - a, bc, dim=-1), dim=-1)
-        in_plane = torch.cross(normal, bc, dim=-1)
-        pos[zmat.order[row]] = c + r * (-torch.cos(theta) * bc
-                                        + torch.sin(theta) * (torch.cos(tau) * in_plane
-                                                              + torch.sin(tau) * normal))
-    return torch.stack(pos, dim=1), _log_jacobian(bonds, angles)
+    offset = torch.stack([(1.0 if from_first else -1.0) * r * torch.cos(theta), r * torch.sin(theta),
+                          zero], dim=-1)
+    placed = torch.stack([first, second, (first if from_first else second) + offset], dim=1)
+    # Every later atom, in slot order: its offset from the bond reference in the local frame
+    # (bc, in_plane, normal) of its references, then one batched frame construction per level.
+    r, theta, tau = bonds[:, plan.bond_cols], angles[:, plan.angle_cols], phi[:, plan.torsion_cols]
+    r_sin = r * torch.sin(theta)
+    local = torch.stack([-r * torch.cos(theta), r_sin * torch.cos(tau), r_sin * torch.sin(tau)])
+    local = local.unsqueeze(-1)  # (3, batch, n_atoms - 3, 1)
+    batch = placed.shape[0]
+    for level in plan.levels:
+        c, b, a = placed.index_select(1, level.refs).view(batch, 3, -1, 3).unbind(1)
+        bc = _normalize(c - b)
+        normal = _normalize(torch.linalg.cross(b - a, bc))
+        along, in_plane, out_of_plane = local[:, :, level.start - 3:level.stop - 3].unbind(0)
+        offset = torch.addcmul(torch.addcmul(along * bc, in_plane, torch.linalg.cross(normal, bc)),
+                               out_of_plane, normal)
+        placed = torch.cat([placed, c + offset], dim=1)
+    return placed[:, plan.atom_slot], _log_jacobian(bonds, angles)
+
+
+def _normalize(vectors: torch.Tensor) -> torch.Tensor:
+    """Unit vectors along the last axis; zero vectors stay zero (as torch.nn.functional.normalize)."""
+    return vectors / torch.linalg.vector_norm(vectors, dim=-1, keepdim=True).clamp_min(1e-12)
