@@ -32,9 +32,8 @@ import mdtraj as md
 import numpy as np
 from rdkit import Chem
 
-from hopwell.coords.torsions import STIFF_BOND
 from hopwell.systems.backbone import BACKBONE_STATES, backbone_state
-from hopwell.systems.builder import rotatable_bonds
+from hopwell.systems.builder import STIFF_BOND, rotatable_bonds
 
 N_BINS = 72  # 5-degree histogram bins for the torsion marginals
 SMOOTH_DEG = 15.0  # width of the wrapped Gaussian smoothing the marginals
@@ -72,7 +71,7 @@ def state_torsions(mol: Chem.Mol) -> list[tuple[tuple[int, int, int, int], int]]
 def cis_trans_torsions(mol: Chem.Mol, torsions) -> list[bool]:
     """Which of ``torsions`` (as from :func:`state_torsions`) get fixed cis and trans wells.
 
-    Those about a partial double bond (:data:`hopwell.coords.torsions.STIFF_BOND`) with
+    Those about a partial double bond (:data:`hopwell.systems.builder.STIFF_BOND`) with
     period 1; with period 2 (two equivalent far substituents, as in N,N-dimethylacetamide)
     cis and trans are one conformer, and the wells are found from the data as for any torsion.
     """

@@ -6,6 +6,7 @@ import numpy as np
 from rdkit import Chem
 
 from hopwell.coords.internal import ZMatrix
+from hopwell.systems.builder import STIFF_BOND
 
 
 def moving_torsions(zmat: ZMatrix, mol: Chem.Mol) -> np.ndarray:
@@ -38,13 +39,6 @@ def moving_torsions(zmat: ZMatrix, mol: Chem.Mol) -> np.ndarray:
         if proper and rigid and not mol.GetBondBetweenAtoms(b, a).IsInRing():
             rows.append(int(k))
     return np.array(rows, dtype=int)
-
-
-# Bonds with partial double-bond character (amide, thioamide, ester, carbamate, urea): the
-# carbonyl-type carbon's single bond to N or O. Common practice: their rotation barriers
-# (roughly 15-20 kcal/mol for amides, 10-13 for esters; values from memory) make them
-# two-state switches rather than free rotors.
-STIFF_BOND = Chem.MolFromSmarts("[CX3](=[OX1,SX1])-[#7,#8]")
 
 
 def stiff_rows(zmat: ZMatrix, mol: Chem.Mol, rows: np.ndarray) -> np.ndarray:

@@ -21,6 +21,12 @@ SOLVENTS = ("vacuum", "obc2")
 DIELECTRICS = ("constant", "distance")
 _MMFF_VARIANT = {"mmff94": "MMFF94", "mmff94s": "MMFF94s"}
 
+# Bonds with partial double-bond character (amide, thioamide, ester, carbamate, urea): the
+# carbonyl-type carbon's single bond to N or O. Common practice: their rotation barriers
+# (roughly 15-20 kcal/mol for amides, 10-13 for esters; values from memory) make them
+# two-state switches rather than free rotors.
+STIFF_BOND = Chem.MolFromSmarts("[CX3](=[OX1,SX1])-[#7,#8]")
+
 
 @dataclass
 class BuildOptions:
