@@ -284,3 +284,30 @@ def test_placement_levels_follow_references(name):
         refs = [int(r[row]) for r in (zmat.bond_ref, zmat.angle_ref, zmat.torsion_ref)]
         assert levels[row] == 1 + max(level_of[r] for r in refs)
     assert set(levels) == set(range(levels.max() + 1))
+
+
+@pytest.mark.parametrize("smiles", ["CCCCCC", "COc1ccc(OCC(=O)N(C)Cc2ccccc2)cc1", "CC(=O)NC(C)C(=O)NC"])
+def test_turning_a_moving_torsion_keeps_every_bond_angle(smiles):
+    # Geometry: a rotation about a bond moves no bond angle (a fact of the trade); mdtraj
+    # measures the angles. Hexane and the aryl ether are molecules whose root's hydrogens once
+    # took their torsion reference across the first bond and bent by about 50 degrees.
+    from hopwell.coords.torsions import moving_torsions
+
+    mol, zmat, positions_nm, _ = _molecule(smiles, n_conformers=1)
+    top = md.Topology()
+    residue = top.add_residue("MOL", top.add_chain())
+    for atom in mol.GetAtoms():
+        top.add_atom(f"A{atom.GetIdx()}", md.element.get_by_symbol(atom.GetSymbol()), residue)
+    triples = np.array([(n1.GetIdx(), atom.GetIdx(), n2.GetIdx()) for atom in mol.GetAtoms()
+                        for i, n1 in enumerate(atom.GetNeighbors())
+                        for n2 in list(atom.GetNeighbors())[i + 1:]])
+    before = md.compute_angles(md.Trajectory(positions_nm.astype(np.float32), top), triples)
+    ic = cartesian_to_internal(zmat, positions_nm)
+    rows = moving_torsions(zmat, mol)
+    assert len(rows) >= 3
+    for k in rows:
+        torsions = ic.torsions_rad.clone()
+        torsions[:, k] += 1.0
+        turned, _ = internal_to_cartesian(zmat, ic.bonds_nm, ic.angles_rad, torsions)
+        after = md.compute_angles(md.Trajectory(turned.numpy().astype(np.float32), top), triples)
+        assert np.degrees(np.abs(after - before).max()) < 1e-2, f"row {k}"

@@ -8,6 +8,7 @@ from rdkit import Chem
 from rdkit.Chem import AllChem
 from scipy.spatial.transform import Rotation
 
+from hopwell.coords import internal
 from hopwell.coords.internal import (
     build_zmatrix,
     cartesian_to_internal,
@@ -148,12 +149,36 @@ def _turnable_rows(mol, bonds, zmat) -> list[int]:
     return rows
 
 
-def test_refused_rows_are_exactly_those_the_rebuild_does_not_turn_rigidly():
+def _cross_bond_reference(neighbours, parent, row_of, row, b, a):
+    """The torsion-reference rule hopwell used before: the root's substituents took a placed
+    neighbour of ``a`` across the bond, so turning that bond dragged the root's hydrogens.
+    Kept here only as a Z-matrix that torsion_axes must refuse."""
+    def placed(atoms, exclude):
+        return sorted((j for j in atoms if j != exclude and row_of[j] < row), key=row_of.__getitem__)
+
+    if parent[a] >= 0 and parent[a] != b:
+        return int(parent[a])
+    return (placed(neighbours[a], b) + placed(neighbours[b], a))[0]
+
+
+def _cross_bond_molecule(monkeypatch, smiles):
+    monkeypatch.setattr(internal, "_torsion_reference", _cross_bond_reference)
+    molecule = _molecule(smiles, n_conformers=1)
+    monkeypatch.undo()
+    return molecule
+
+
+@pytest.mark.parametrize("rule", ["current", "cross_bond"])
+def test_refused_rows_are_exactly_those_the_rebuild_does_not_turn_rigidly(monkeypatch, rule):
     """Among principal rows about acyclic bonds with the torsion reference on the fixed side,
     torsion_axes refuses a row exactly when changing it in the Z-matrix and rebuilding is no
-    rigid rotation of one side. In this molecule the root carbon's hydrogens take their
-    torsion reference across the bond to the second placed atom, so one such row exists."""
-    mol, bonds, zmat, positions_nm = _molecule(SMILES["aryloxy_acetamide"], n_conformers=1)
+    rigid rotation of one side. With the current reference rule no such row is refused; with
+    the earlier rule the root carbon's hydrogens took their torsion reference across the bond
+    to the second placed atom, so one row must be refused."""
+    if rule == "current":
+        mol, bonds, zmat, positions_nm = _molecule(SMILES["aryloxy_acetamide"], n_conformers=1)
+    else:
+        mol, bonds, zmat, positions_nm = _cross_bond_molecule(monkeypatch, SMILES["aryloxy_acetamide"])
     ic = cartesian_to_internal(zmat, positions_nm)
     accepted = set(rigid_rows(zmat, bonds, np.arange(zmat.n_atoms - 3)).tolist())
     verdicts = []
@@ -167,7 +192,7 @@ def test_refused_rows_are_exactly_those_the_rebuild_does_not_turn_rigidly():
         rigid = _kabsch_max_deviation(rebuilt[0].numpy(), turned[0]) < 1e-9
         verdicts.append((k, rigid, k in accepted))
     assert all(rigid == ok for _, rigid, ok in verdicts), verdicts
-    assert {ok for _, _, ok in verdicts} == {True, False}
+    assert {ok for _, _, ok in verdicts} == ({True} if rule == "current" else {True, False})
 
 
 def test_batched_rotation_matches_one_bond_at_a_time():
@@ -184,7 +209,7 @@ def test_batched_rotation_matches_one_bond_at_a_time():
     assert not np.allclose(batched[0], positions_nm[0])
 
 
-def test_bad_input_raises():
+def test_bad_input_raises(monkeypatch):
     mol, bonds, zmat, positions_nm = _molecule(SMILES["methylcyclohexane"], n_conformers=1)
     offset_row = int(np.flatnonzero(~zmat.is_principal)[0])
     with pytest.raises(ValueError, match="offset from row"):
@@ -202,7 +227,7 @@ def test_bad_input_raises():
         zmat4.n_atoms, bonds4, int(zmat4.angle_ref[k + 3]), int(zmat4.bond_ref[k + 3]))[zmat4.torsion_ref[k + 3]])
     with pytest.raises(ValueError, match="reference atom"):
         torsion_axes(zmat4, bonds4, [improper])
-    mol6, bonds6, zmat6, _ = _molecule(SMILES["aryloxy_acetamide"], n_conformers=1)
+    mol6, bonds6, zmat6, _ = _cross_bond_molecule(monkeypatch, SMILES["aryloxy_acetamide"])
     with pytest.raises(ValueError, match="straddle"):
         torsion_axes(zmat6, bonds6, _turnable_rows(mol6, bonds6, zmat6))
     moving = side_of_bond(zmat.n_atoms, bonds, 0, 1)

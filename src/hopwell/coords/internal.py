@@ -144,12 +144,19 @@ def _torsion_reference(neighbours: list[list[int]], parent: np.ndarray, row_of: 
     A placed neighbour of ``a`` other than ``b`` (``a``'s own bond reference first, then by
     placement row); failing that, a placed neighbour of ``b`` other than ``a``. One of the two
     exists because the placed atoms form a connected tree of at least three atoms.
+
+    The root's own substituents (``b`` the root, ``a`` the second placed atom, whose parent is
+    ``b``) take a placed neighbour of ``b`` first: a reference across the bond would be one of
+    ``a``'s children, so turning ``a``'s side would drag the root's hydrogens along while the
+    root's other placed neighbour stays put, bending the angles at the root.
     """
     def placed(atoms: list[int], exclude: int) -> list[int]:
         chosen = [j for j in atoms if j != exclude and row_of[j] < row]
         return sorted(chosen, key=row_of.__getitem__)
 
-    if parent[a] >= 0 and parent[a] != b:
+    if parent[a] == b:
+        return (placed(neighbours[b], a) + placed(neighbours[a], b))[0]
+    if parent[a] >= 0:
         return int(parent[a])
     return (placed(neighbours[a], b) + placed(neighbours[b], a))[0]
 
@@ -170,7 +177,8 @@ def build_zmatrix(
     first placed atom). The torsion reference
     is chosen once per central bond ``(b, a)``: a placed neighbour of ``a`` (a proper chain
     ``t-a-b-atom``), preferring ``a``'s bond reference, else a placed neighbour of ``b`` (an
-    improper-style reference).
+    improper-style reference); the root's own substituents prefer a placed neighbour of the
+    root, so that no torsion turns atoms on both sides of a bond.
 
     Parameters
     ----------
