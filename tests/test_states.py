@@ -54,7 +54,8 @@ def test_amide_keeps_a_rare_cis_state(rare_fraction):
     assert atoms[1:3] == (1, 3) and period == 1  # the carbonyl C and the N
     x, cis = _two_well_samples(np.random.default_rng(5), 20000, rare_fraction, 0.0)
     model = st.torsion_model(mol, x[:, None])
-    assert model.names == ("180", "0", "other")
+    # Wells named as the trade does (C-C(=O)-N-C at 180 is the trans amide: fact of the trade).
+    assert model.names == ("A:trans(180)", "A:cis(0)", "other")
     np.testing.assert_allclose(model.edges[0], np.deg2rad([-90.0, 90.0]))
     assert np.array_equal(model.assign(x[:, None]), cis.astype(int))
 
@@ -66,11 +67,11 @@ def test_cis_trans_wells_only_for_amide_like_bonds():
     rng = np.random.default_rng(6)
     x, _ = _two_well_samples(rng, 20000, 0.004, 0.0)
     butane = st.torsion_model(Chem.AddHs(Chem.MolFromSmiles("CCCC")), x[:, None])
-    assert butane.names == ("180", "other") and len(butane.edges[0]) == 0
+    assert butane.names == ("A:anti(180)", "other") and len(butane.edges[0]) == 0
     amide = Chem.AddHs(Chem.MolFromSmiles("CC(=O)NC"))
     trans_only = rng.vonmises(np.pi, 40.0, 5000)[:, None]
     model = st.torsion_model(amide, trans_only)
-    assert model.names == ("180", "other") and len(model.edges[0]) == 2
+    assert model.names == ("A:trans(180)", "other") and len(model.edges[0]) == 2
     assert model.assign(np.array([[0.1], [np.pi]])).tolist() == [1, 0]
     # Ester and thioamide bonds are amide-like (STIFF_BOND); N,N-dimethylacetamide's cis and
     # trans are one conformer (period 2), so its wells come from the data.
@@ -94,8 +95,8 @@ def test_rare_amide_isomer_joins_the_most_populated_combination():
     ring = rng.vonmises(0.0, 20.0, n)
     model = st.torsion_model(mol, np.stack([amide, side, ring], axis=1))
     labels = model.assign(np.stack([amide, side, ring], axis=1))
-    cis_names = [name for name in model.names if name.split()[0] == "0"]
-    assert len(cis_names) == 1 and cis_names[0].split()[1] == "+90"
+    cis_names = [name for name in model.names if name.split()[0] == "A:cis(0)"]
+    assert len(cis_names) == 1 and cis_names[0].split()[1] == "B:+90"
     assert np.all(labels[cis & (side > 0)] == model.names.index(cis_names[0]))
     assert np.all(labels[cis & (side < 0)] == len(model.names) - 1)
 
@@ -138,7 +139,9 @@ def test_report_on_a_short_butane_run(tmp_path):
         assert s["ci95"][0] <= s["population"] <= s["ci95"][1]
     names = [s["name"] for s in summary["states"]]
     # n-butane's C-C-C-C torsion has anti (180) and two gauche (+-60) wells: fact of the trade.
-    assert "180" in names and any(n.startswith(("+6", "-6", "+5", "-5", "+7", "-7")) for n in names)
+    assert "A:anti(180)" in names
+    assert any(n.startswith(("A:gauche+(+6", "A:gauche-(-6", "A:gauche+(+5", "A:gauche-(-5",
+                             "A:gauche+(+7", "A:gauche-(-7")) for n in names), names
     for name in ("summary.json", "populations.csv", "report.html"):
         assert (run_dir / name).is_file()
 

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import functools
 import json
+import os
 import sys
 import tempfile
 import traceback
@@ -201,16 +202,6 @@ def _sampler_options(fn):
     return fn
 
 
-def _budget(hours, samples):
-    from hopwell.sampling.sampler import Budget
-
-    if hours is None and samples is None:
-        raise InputError("give a budget: --hours H or --samples N")
-    if (hours is not None and hours <= 0) or (samples is not None and samples < 1):
-        raise InputError("--hours and --samples must be positive")
-    return Budget(samples=samples, seconds=None if hours is None else hours * 3600.0)
-
-
 def _narrow_enough(width_points):
     """A ``stop_when`` callback for ``--until-width`` (None when not asked for)."""
     if width_points is None:
@@ -279,6 +270,24 @@ def _progress_printer(budget):
     return show
 
 
+def _run_sharded(spec, run_dir, options, settings, budget, walkers, platform, workers, scheduler,
+                 shards, until_width):
+    """``hopwell run`` with production in shards on Dask (see :mod:`hopwell.sampling.shards`)."""
+    from hopwell.sampling.shards import start_sharded_run
+
+    if until_width is not None:
+        raise InputError("--until-width is not available with sharded production (--workers/--scheduler)")
+    if workers is not None and workers < 0:
+        raise InputError(f"--workers must be 0 (one per core) or more, got {workers}")
+    workers = workers or None  # 0: one per core
+    if shards is None:
+        shards = (walkers or 1) if scheduler else (workers or os.cpu_count() or 1)
+    done = start_sharded_run(spec, run_dir, options, settings, budget, shards, n_walkers=walkers,
+                             platform=platform, workers=workers, scheduler=scheduler,
+                             progress=_progress_printer(budget))
+    click.echo(f"\nrun finished: {len(done)} shard(s) sampled in {run_dir}/shards", err=True)
+
+
 def _load_config(ctx, param, value):
     """Take option defaults from a TOML file whose keys are the long option names."""
     if value is None:
@@ -310,9 +319,17 @@ def _load_config(ctx, param, value):
 @click.option("-o", "--output", "run_dir", required=True, type=click.Path(file_okay=False),
               help="Run directory to create.")
 @_sampler_options
+@click.option("--workers", type=int, default=None,
+              help="Sample production in shards on this many single-threaded Dask worker processes"
+                   " (0: one per core); training stays in this process.")
+@click.option("--scheduler", default=None,
+              help="Sample production shards on the existing Dask cluster at this address.")
+@click.option("--shards", type=int, default=None,
+              help="Production shards (walkers divided among them) [default: the workers, or one per walker].")
 @_fail_cleanly
 def run(run_dir, hours, samples, temperature_K, walkers, training_cycles, langevin_steps,
-        proposals, platform, method, replicas, top_temperature_K, local_move, until_width, **kwargs):
+        proposals, platform, method, replicas, top_temperature_K, local_move, until_width,
+        workers, scheduler, shards, **kwargs):
     """Sample the conformers of INPUT into a new run directory.
 
     \b
@@ -322,28 +339,30 @@ def run(run_dir, hours, samples, temperature_K, walkers, training_cycles, langev
     """
     import torch
 
-    from hopwell.sampling.run import start_run
+    from hopwell.sampling.run import (
+        check_settings,
+        make_budget,
+        start_run,
+        training_schedule,
+    )
     from hopwell.sampling.sampler import SamplerSettings
     from hopwell.systems.builder import BuildOptions
 
-    budget = _budget(hours, samples)
-    if method in ("md", "remd"):  # no flow to train: every cycle is production
-        training_cycles, hours_share = 0, None
-    else:
-        hours_share = None if training_cycles is not None or hours is None else 0.3 * hours * 3600.0
-        training_cycles = training_cycles if training_cycles is not None else (10**9 if hours and not samples else 200)
+    budget = make_budget(hours, samples)
+    training_cycles, hours_share = training_schedule(method, training_cycles, budget)
     settings = SamplerSettings(
         temperature_K=temperature_K, langevin_steps=langevin_steps, proposals_per_cycle=proposals,
         seed=kwargs["random_seed"], method=method, local_move=local_move,
         training_cycles=training_cycles, training_seconds=hours_share,
         replicas=replicas, top_temperature_K=top_temperature_K,
     )
-    if temperature_K <= 0 or langevin_steps < 1 or proposals < 1:
-        raise InputError("--temperature, --langevin-steps and --proposals must be positive")
-    if method == "remd" and (replicas < 2 or top_temperature_K <= temperature_K):
-        raise InputError("remd needs --replicas of at least 2 and --top-temperature above --temperature")
+    check_settings(settings)
     options = BuildOptions(**{k: v for k, v in kwargs.items() if k != "input_spec"})
     torch.set_num_threads(1)  # OpenMM and torch alternate; one thread each avoids oversubscription
+    if workers is not None or scheduler or shards is not None:
+        _run_sharded(kwargs["input_spec"], Path(run_dir), options, settings, budget, walkers, platform,
+                     workers, scheduler, shards, until_width)
+        return
     sampler = start_run(kwargs["input_spec"], Path(run_dir), options, settings, budget,
                         n_walkers=walkers, platform=platform, progress=_progress_printer(budget),
                         stop_when=_narrow_enough(until_width))
@@ -355,8 +374,11 @@ def run(run_dir, hours, samples, temperature_K, walkers, training_cycles, langev
 @click.argument("run_dir", type=click.Path(file_okay=False))
 @click.option("--hours", type=float, default=None, help="New wall-clock budget (hours, total).")
 @click.option("--samples", type=int, default=None, help="New total of production samples.")
+@click.option("--workers", type=int, default=None,
+              help="Sharded runs: Dask worker processes for the unfinished shards (0: one per core).")
+@click.option("--scheduler", default=None, help="Sharded runs: an existing Dask cluster's address.")
 @_fail_cleanly
-def resume(run_dir, hours, samples):
+def resume(run_dir, hours, samples, workers, scheduler):
     """Continue RUN_DIR from its last checkpoint, losing and duplicating nothing.
 
     \b
@@ -365,10 +387,17 @@ def resume(run_dir, hours, samples):
     """
     import torch
 
-    from hopwell.sampling.run import resume_run, saved_budget
+    from hopwell.sampling.run import make_budget, resume_run, saved_budget
 
-    budget = saved_budget(Path(run_dir)) if hours is None and samples is None else _budget(hours, samples)
+    budget = saved_budget(Path(run_dir)) if hours is None and samples is None else make_budget(hours, samples)
     torch.set_num_threads(1)
+    from hopwell.sampling.shards import n_planned, train_then_shard
+
+    if n_planned(Path(run_dir)) is not None:  # sharded: train if unfinished, then the unfinished shards
+        new = None if hours is None and samples is None else budget
+        done = train_then_shard(Path(run_dir), workers or None, scheduler, new, _progress_printer(budget))
+        click.echo(f"\n{len(done)} shard(s) sampled to their budget in {run_dir}", err=True)
+        return
     sampler = resume_run(Path(run_dir), budget, progress=_progress_printer(budget))
     click.echo(f"\nrun finished at cycle {sampler.cycle}: {sampler.production_samples} production"
                f" samples in {run_dir}", err=True)
@@ -420,42 +449,30 @@ def status(run_dir, as_json):
     Example:
       hopwell status dipeptide
     """
-    from hopwell.sampling.store import RunStore
+    from hopwell.sampling.run import run_status
 
-    store = RunStore.open(Path(run_dir))
-    state = store.read_state()
-    if state is None:
-        raise InputError(f"{run_dir}: no checkpoint yet (the run is starting)")
-    stats = json.loads(str(state["stats"]))
+    from hopwell.sampling.shards import n_planned, shard_status
 
-    def rate(name):
-        s = stats[name]
-        return s["accepted"] / s["proposed"] if s["proposed"] else None
-
-    info = {
-        "sampling_pid": store.writer_pid(),  # the process sampling into run_dir now, if any
-        "phase": "production" if int(state["training_end_cycle"]) >= 0 else "training",
-        "cycle": int(state["cycle"]),
-        "elapsed_min": float(state["elapsed_s"]) / 60.0,
-        "production_samples": int(state["production_samples"]),
-        "chunks": int(state["next_chunk"]),
-        "flow_acceptance_training": rate("training"),
-        "flow_acceptance_production": rate("production"),
-        "one_torsion_acceptance": rate("single"),
-        "dart_acceptance": rate("dart") if "dart" in stats else None,
-        "langevin_rolled_back": stats["langevin"].get("rolled_back") if "langevin" in stats else None,
-        "states_failing_guard": stats["langevin"].get("outside_guard") if "langevin" in stats else None,
-        "exchange_acceptance": (sum(stats["exchange"]["accepted"]) / sum(stats["exchange"]["attempted"])
-                                if "exchange" in stats and sum(stats["exchange"]["attempted"]) else None),
-        "budget": store.config().get("budget", {}),
-    }
+    info = run_status(Path(run_dir))
+    if n_planned(Path(run_dir)) is not None:
+        info["shards"] = shard_status(Path(run_dir))
     if as_json:
         click.echo(json.dumps(info, indent=2))
         return
     for key, value in info.items():
+        if key == "shards":
+            continue
         if isinstance(value, float):
             value = f"{value:.3f}"
         click.echo(f"{key.replace('_', ' '):<28} {'-' if value is None else value}")
+    for row in info.get("shards", []):
+        if not row["created"]:
+            click.echo(f"shard {row['shard']:<22} not created (training unfinished)")
+            continue
+        state = "finished" if row["finished"] else ("sampling" if row["sampling_pid"] else "unfinished")
+        click.echo(f"shard {row['shard']:<22} {state}: walkers {row['first_walker']}-"
+                   f"{row['first_walker'] + row['walkers'] - 1}, cycle {row['cycle']},"
+                   f" {row['production_samples']} production samples")
 
 
 @main.command()

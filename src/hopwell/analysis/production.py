@@ -177,3 +177,54 @@ def move_acceptance(store: RunStore) -> dict:
         out["exchange_per_pair"] = [a / t if t else None for a, t in zip(exchange["accepted"], exchange["attempted"])]
         out["ladder_K"] = exchange["temperatures_K"]
     return out
+
+
+def _add_counts(parts: list[CycleCounts]) -> CycleCounts:
+    """Cycle-by-cycle sums of several runs' counts (the shards and the training run)."""
+    n = max(len(p.blocks) for p in parts)
+
+    def total(name, dtype):
+        out = np.zeros(n, dtype=dtype)
+        for p in parts:
+            values = getattr(p, name)
+            out[:len(values)] = out[:len(values)] + values if dtype is not bool else out[:len(values)] | values
+        return out
+
+    return CycleCounts(*(total(name, np.int64) for name in ("blocks", "blocks_accepted", "proposals",
+                                                            "proposals_accepted")), total("production", bool))
+
+
+def _training_counts(store: RunStore) -> CycleCounts:
+    """Flow-block counts per cycle of a run's own chunks (a sharded run's training)."""
+    tallies, n_cycles = [], 0
+    for chunk in store.iter_chunks():
+        flow = chunk["state_move"] == MOVE_FLOW
+        n_cycles = max(n_cycles, 1 + int(chunk["state_cycle"].max(initial=-1)))
+        tallies.append(_per_cycle(chunk["state_cycle"][flow], chunk["state_accepted"][flow]))
+    return _cycle_counts(n_cycles, tallies, [], [])
+
+
+def gather_run(store: RunStore, topology: md.Topology, torsions, kT: float) -> Production:
+    """:func:`gather`, pooled over the shards of a sharded run (:mod:`hopwell.sampling.shards`).
+
+    Walkers are numbered over all shards (a shard's first walker is its offset), so each
+    walker keeps its own time series and its own autocorrelation; the acceptance counts add the
+    training run's cycles to the shards'.
+    """
+    from hopwell.sampling.shards import shard_stores
+
+    shards = shard_stores(store.path)
+    if not shards:
+        return gather(store, topology, torsions, kT)
+    parts = [(gather(shard, topology, torsions, kT), first) for shard, first in shards]
+    arrays = {
+        "dihedrals_rad": np.concatenate([p.dihedrals_rad for p, _ in parts]),
+        "energy_kj": np.concatenate([p.energy_kj for p, _ in parts]),
+        "walker": np.concatenate([p.walker + first for p, first in parts]),
+        "order": np.concatenate([p.order for p, _ in parts]),
+        "proposal_dihedrals_rad": np.concatenate([p.proposal_dihedrals_rad for p, _ in parts]),
+        "proposal_log_weight": np.concatenate([p.proposal_log_weight for p, _ in parts]),
+        "proposal_block": np.concatenate([p.proposal_block + first for p, first in parts]),  # cycle * 1e6 + walker
+    }
+    return Production(**arrays, flow_accepted=sum(p.flow_accepted for p, _ in parts),
+                      acceptance=_add_counts([_training_counts(store)] + [p.acceptance for p, _ in parts]))

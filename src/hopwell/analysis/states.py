@@ -32,6 +32,7 @@ import mdtraj as md
 import numpy as np
 from rdkit import Chem
 
+from hopwell.analysis.labels import torsion_labels, well_name
 from hopwell.systems.backbone import BACKBONE_STATES, backbone_state
 from hopwell.systems.builder import STIFF_BOND, rotatable_bonds
 
@@ -207,10 +208,11 @@ def torsion_model(mol: Chem.Mol, dihedrals_rad: np.ndarray) -> StateModel:
     wells = np.stack([assign_wells(dihedrals_rad[:, t], edges[t], p)
                       for t, (_, p) in enumerate(torsions)], axis=1)
     kept = _kept_combinations(wells, cis_trans)
+    tags = torsion_labels(mol, torsions)
     names = []
-    for combo in kept:
+    for combo in kept:  # e.g. "A:trans(180) B:gauche+(+65)" (hopwell.analysis.labels)
         members = np.all(wells == np.array(combo), axis=1)
-        names.append(" ".join(well_label(dihedrals_rad[members, t], p)
+        names.append(" ".join(well_name(tags[t], float(well_label(dihedrals_rad[members, t], p)))
                               for t, (_, p) in enumerate(torsions)))
     return StateModel("torsions", tuple(names) + ("other",), tuple(torsions), edges,
                       {c: i for i, c in enumerate(kept)})

@@ -6,6 +6,7 @@ computes numbers.
 
 from __future__ import annotations
 
+import itertools
 from pathlib import Path
 
 import mdtraj as md
@@ -14,11 +15,12 @@ from rdkit import Chem
 
 from hopwell.analysis import states as st
 from hopwell.analysis import stats
+from hopwell.analysis.labels import ATOM_NUMBERING, torsion_labels
 from hopwell.analysis.observables import KARPLUS_HN_HA, j3_hn_ha, series_mean
 from hopwell.analysis.production import (
     Production,
     acceptance_over_time,
-    gather,
+    gather_run,
     move_acceptance,
     walker_series,
 )
@@ -28,6 +30,7 @@ from hopwell.analysis.reweight import (
     temperature_log_weights,
 )
 from hopwell.analysis.verdict import judge
+from hopwell.sampling.shards import shard_stores
 from hopwell.sampling.store import RunStore
 from hopwell.systems.energy import kT_kj
 
@@ -69,7 +72,7 @@ def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict
     model, torsions = (model, None) if model is not None else _state_model(store, mol, topology, states_file)
     temperature = float(config["sampler"]["temperature_K"])
     kT = kT_kj(temperature)
-    production = gather(store, topology, model.torsions if model else torsions, kT)
+    production = gather_run(store, topology, model.torsions if model else torsions, kT)  # shards pooled
     if model is None:
         model = st.torsion_model(mol, production.dihedrals_rad)
     labels = model.assign(production.dihedrals_rad)
@@ -120,6 +123,10 @@ def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict
         "acceptance_over_time": (acceptance_over_time(production.acceptance)
                                  if config["sampler"].get("proposals_per_cycle", 1) else []),
     }
+    shard_bounds = [first for _, first in shard_stores(store.path)] + [n_walkers]
+    if len(shard_bounds) > 1:  # walkers are numbered over the shards, a shard's walkers consecutive
+        summary["per_shard_populations"] = [[float(np.mean(series[a:b] == s)) for s in range(n_states)]
+                                            for a, b in itertools.pairwise(shard_bounds)]
     if model.kind == "backbone":  # phi is the model's first dihedral
         phi = walker_series(production.dihedrals_rad[:, 0], production)
         summary["observables"] = {
@@ -129,8 +136,10 @@ def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict
     summary["_labels"] = labels
     summary["_series"] = series
     summary["_dihedrals"] = production.dihedrals_rad
-    summary["_torsion_names"] = (["phi", "psi"] if model.kind == "backbone" else
-                                 ["-".join(str(a + 1) for a in atoms) for atoms, _ in model.torsions])
+    tags = torsion_labels(mol, model.torsions, backbone=model.kind == "backbone")
+    summary["torsions"] = [{**tag.as_dict(), "numbering": ATOM_NUMBERING} for tag in tags]
+    summary["_torsion_labels"] = tags
+    summary["_molecule"] = mol
     if reweight:
         summary["reweighted"] = _reweighted(store, reweight, production, series, model, rng, n_boot)
     return summary

@@ -15,6 +15,7 @@ from rdkit import Chem
 from hopwell.analysis.summary import public
 from hopwell.atomic import atomic_write_bytes
 from hopwell.report.page import html_page
+from hopwell.sampling.shards import iter_pooled_chunks
 from hopwell.sampling.store import RunStore
 
 
@@ -55,7 +56,7 @@ def write_ensemble(run_dir: Path, summary: dict) -> list[Path]:
     tmp = store.path / ".ensemble.dcd.tmp"
     frame = 0
     with md.formats.DCDTrajectoryFile(str(tmp), "w", force_overwrite=True) as dcd:
-        for chunk in store.iter_chunks():
+        for chunk in iter_pooled_chunks(store):  # a sharded run's shards too, in the report's order
             keep = chunk["state_production"].astype(bool)
             if not keep.any():
                 continue

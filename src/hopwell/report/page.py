@@ -2,8 +2,10 @@
 
 from __future__ import annotations
 
+import base64
 import html
 
+from hopwell.report.drawing import molecule_svg
 from hopwell.report.plots import (
     acceptance_plot,
     population_plot,
@@ -21,6 +23,19 @@ def _acceptance_section(summary: dict) -> str:
 <p>Flow moves per window of cycles; one-torsion moves and seed darts are not recorded per
 cycle, and single flow proposals only in production.</p>
 <p><img id="acceptance-plot" alt="flow acceptance" src="data:image/png;base64,{acceptance_plot(windows)}"></p>
+"""
+
+
+def _torsion_section(summary: dict) -> str:
+    """The molecule drawn with each state torsion's bond lettered, and the key to the letters."""
+    tags = summary["_torsion_labels"]
+    # As an image (data URI): the SVG's namespace URL would otherwise sit in the page's text.
+    svg = base64.b64encode(molecule_svg(summary["_molecule"], tags).encode()).decode()
+    rows = "".join(f"<tr><td>{html.escape(t.letter)}</td><td>{html.escape(t.bond)}</td>"
+                   f"<td>{'-'.join(str(a) for a in t.atoms)}</td></tr>" for t in tags)
+    return f"""<h2>State torsions</h2>
+<p><img id="molecule-drawing" alt="molecule with the state torsions lettered" src="data:image/svg+xml;base64,{svg}"></p>
+<table id="torsion-key"><tr><th>letter</th><th>bond</th><th>atoms (from 1, as in the SDF/PDB)</th></tr>{rows}</table>
 """
 
 
@@ -54,7 +69,7 @@ flow acceptance {"-" if acceptance is None else f"{100 * acceptance:.1f}%"}; ove
 <th>dG (kJ/mol) vs {html.escape(summary['dG_reference'])}</th><th>dG 95% interval</th></tr>{rows}</table>
 {"".join(f"<p>{html.escape(k)}: {v['mean']:.2f} (95% {v['ci95_low']:.2f} - {v['ci95_high']:.2f})</p>"
          for k, v in summary.get("observables", {}).items())}
-<h2>Walkers</h2>
+{_torsion_section(summary)}<h2>Walkers</h2>
 <table id="walkers"><tr><th>walker</th>{"".join(f"<th>{html.escape(s['name'])} (%)</th>" for s in summary["states"])}<th>transitions</th></tr>
 {"".join(f"<tr><td>{w}</td>" + "".join(f"<td>{100 * p:.1f}</td>" for p in row) + f"<td>{t}</td></tr>"
          for w, (row, t) in enumerate(zip(summary["per_walker_populations"], summary["transitions_per_walker"])))}

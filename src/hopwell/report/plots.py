@@ -10,6 +10,8 @@ import numpy as np
 from hopwell.analysis.states import POPULATION_FLOOR
 from hopwell.systems.energy import kT_kj
 
+TORSION_PLOT_COLUMNS = 3  # at 100 dpi, three panels fill about 910 px
+
 
 def population_plot(summary: dict) -> str:
     """A bar chart of populations with 95% intervals, as a base64 PNG."""
@@ -19,13 +21,15 @@ def population_plot(summary: dict) -> str:
     import matplotlib.pyplot as plt
 
     shown = [s for s in summary["states"] if s["population"] > 0 or s["name"] != "other"]
-    fig, ax = plt.subplots(figsize=(max(4, 0.9 * len(shown) + 2), 3.2), dpi=100)
+    # Horizontal bars: long state names read along the axis and the width stays fixed.
+    fig, ax = plt.subplots(figsize=(7, 0.32 * len(shown) + 1.3), dpi=100)
     p = np.array([s["population"] for s in shown]) * 100
     lo = p - np.array([s["ci95"][0] for s in shown]) * 100
     hi = np.array([s["ci95"][1] for s in shown]) * 100 - p
-    ax.bar(range(len(shown)), p, yerr=[lo, hi], capsize=4, color="#4c78a8")
-    ax.set_xticks(range(len(shown)), [s["name"] for s in shown], rotation=30, ha="right")
-    ax.set_ylabel("population (%)")
+    ax.barh(range(len(shown)), p, xerr=[lo, hi], capsize=3, color="#4c78a8")
+    ax.set_yticks(range(len(shown)), [s["name"] for s in shown], fontsize=7)
+    ax.invert_yaxis()  # most populated at the top, as in the table
+    ax.set_xlabel("population (%)")
     ax.set_title("Populations with 95% intervals")
     return _png(fig)
 
@@ -63,7 +67,7 @@ def torsion_plot(summary: dict) -> str:
 
     d = np.degrees(summary["_dihedrals"])
     kT = kT_kj(summary["temperature_K"])
-    names = summary["_torsion_names"]
+    tags = summary["_torsion_labels"]
     if summary["state_model"] == "backbone":
         fig, ax = plt.subplots(figsize=(4.2, 3.6), dpi=100)
         hist, xe, ye = np.histogram2d(d[:, 0], d[:, 1], bins=36, range=[[-180, 180], [-180, 180]])
@@ -71,19 +75,29 @@ def torsion_plot(summary: dict) -> str:
             g = -kT * np.log(hist / hist.max())
         mesh = ax.pcolormesh(xe, ye, g.T, cmap="viridis", vmax=20)
         fig.colorbar(mesh, ax=ax, label="G (kJ/mol)")
-        ax.set_xlabel("phi (deg)")
-        ax.set_ylabel("psi (deg)")
+        ax.set_xlabel(f"{tags[0].caption} (deg)", fontsize=7)
+        ax.set_ylabel(f"{tags[1].caption} (deg)", fontsize=7)
         return _png(fig)
     n = max(1, d.shape[1])
-    fig, axes = plt.subplots(1, n, figsize=(2.6 * n + 1, 2.8), dpi=100, squeeze=False)
-    for t in range(d.shape[1]):
+    columns = min(n, TORSION_PLOT_COLUMNS)  # rows wrap, so the figure stays within a page's width
+    rows = -(-n // columns)
+    fig, axes = plt.subplots(rows, columns, figsize=(2.9 * columns + 0.4, 2.5 * rows + 0.3), dpi=100,
+                             squeeze=False)
+    for t in range(rows * columns):
+        ax = axes[t // columns, t % columns]
+        if t >= d.shape[1]:
+            ax.axis("off")
+            continue
         hist, edges = np.histogram(d[:, t], bins=72, range=(-180, 180))
         with np.errstate(divide="ignore"):
             g = -kT * np.log(hist / hist.max())
-        axes[0, t].step(0.5 * (edges[1:] + edges[:-1]), g, where="mid")
-        axes[0, t].set_xlabel(f"torsion {names[t]} (deg)")
-        axes[0, t].set_ylim(0, 25)
-    axes[0, 0].set_ylabel("G (kJ/mol)")
+        ax.step(0.5 * (edges[1:] + edges[:-1]), g, where="mid")
+        ax.set_title(tags[t].caption, fontsize=8)
+        ax.set_xlabel("torsion (deg)", fontsize=8)
+        ax.set_ylim(0, 25)
+        ax.set_xticks([-180, -90, 0, 90, 180])
+        if t % columns == 0:
+            ax.set_ylabel("G (kJ/mol)")
     return _png(fig)
 
 

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import io
+import json
 from dataclasses import asdict, fields
 from pathlib import Path
 
@@ -82,9 +83,14 @@ def _walkers(settings: SamplerSettings, n_walkers: int | None, n_seeds: int) -> 
 
 def start_run(spec: str, out_dir: Path, build_options: BuildOptions, settings: SamplerSettings,
               budget: Budget, n_walkers: int | None = None, platform: str | None = None,
-              progress=None, stop_when=None) -> Sampler:
-    """Build the system, create the run directory and sample until the budget is spent."""
-    molsys = build(spec, build_options)
+              progress=None, stop_when=None, molsys: MolecularSystem | None = None) -> Sampler:
+    """Build the system, create the run directory and sample until the budget is spent.
+
+    ``molsys``, when given, is what ``build(spec, build_options)`` returned: it is used as it
+    is, not built again (``spec`` and ``build_options`` are still written to run.toml).
+    """
+    if molsys is None:
+        molsys = build(spec, build_options)
     walkers = _walkers(settings, n_walkers, len(molsys.seeds_nm))
     config = {
         "format": FORMAT_VERSION,
@@ -163,3 +169,69 @@ def resume_run(run_dir: Path, budget: Budget | None = None, progress=None, stop_
         sampler.store.log(f"resumed at cycle {sampler.cycle}")
         sampler.run(budget, progress, stop_when)
     return sampler
+
+
+def make_budget(hours: float | None, samples: int | None) -> Budget:
+    """The budget of a new run or a resume; one of ``hours`` and ``samples`` is needed."""
+    if hours is None and samples is None:
+        raise InputError("give a budget: --hours H or --samples N")
+    if (hours is not None and hours <= 0) or (samples is not None and samples < 1):
+        raise InputError("--hours and --samples must be positive")
+    return Budget(samples=samples, seconds=None if hours is None else hours * 3600.0)
+
+
+def training_schedule(method: str, training_cycles: int | None, budget: Budget) -> tuple[int, float | None]:
+    """Training cycles and training seconds of a new run.
+
+    None for "md" and "remd" (no flow to train: every cycle is production); otherwise the cycles
+    asked for, or, when none are, 30% of a time budget (a samples budget: 200 cycles).
+    """
+    if method in ("md", "remd"):
+        return 0, None
+    if training_cycles is not None:
+        return training_cycles, None
+    if budget.seconds is None:
+        return 200, None
+    return (10**9 if not budget.samples else 200), 0.3 * budget.seconds
+
+
+def check_settings(settings: SamplerSettings) -> None:
+    """Refuse (:class:`~hopwell.errors.InputError`) settings no run can use."""
+    if settings.temperature_K <= 0 or settings.langevin_steps < 1 or settings.proposals_per_cycle < 1:
+        raise InputError("--temperature, --langevin-steps and --proposals must be positive")
+    if settings.method == "remd" and (settings.replicas < 2 or settings.top_temperature_K <= settings.temperature_K):
+        raise InputError("remd needs --replicas of at least 2 and --top-temperature above --temperature")
+
+
+def run_status(run_dir: Path) -> dict:
+    """What ``hopwell status`` shows: phase, cycle, samples and acceptance, from the checkpoint.
+
+    Reads only; safe while another process samples into ``run_dir``.
+    """
+    store = RunStore.open(Path(run_dir))
+    state = store.read_state()
+    if state is None:
+        raise InputError(f"{run_dir}: no checkpoint yet (the run is starting)")
+    stats = json.loads(str(state["stats"]))
+
+    def rate(name):
+        s = stats[name]
+        return s["accepted"] / s["proposed"] if s["proposed"] else None
+
+    return {
+        "sampling_pid": store.writer_pid(),  # the process sampling into run_dir now, if any
+        "phase": "production" if int(state["training_end_cycle"]) >= 0 else "training",
+        "cycle": int(state["cycle"]),
+        "elapsed_min": float(state["elapsed_s"]) / 60.0,
+        "production_samples": int(state["production_samples"]),
+        "chunks": int(state["next_chunk"]),
+        "flow_acceptance_training": rate("training"),
+        "flow_acceptance_production": rate("production"),
+        "one_torsion_acceptance": rate("single"),
+        "dart_acceptance": rate("dart") if "dart" in stats else None,
+        "langevin_rolled_back": stats["langevin"].get("rolled_back") if "langevin" in stats else None,
+        "states_failing_guard": stats["langevin"].get("outside_guard") if "langevin" in stats else None,
+        "exchange_acceptance": (sum(stats["exchange"]["accepted"]) / sum(stats["exchange"]["attempted"])
+                                if "exchange" in stats and sum(stats["exchange"]["attempted"]) else None),
+        "budget": store.config().get("budget", {}),
+    }

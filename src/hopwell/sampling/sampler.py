@@ -22,6 +22,7 @@ from __future__ import annotations
 import io
 import json
 import signal
+import threading
 import time
 from dataclasses import dataclass
 
@@ -86,6 +87,7 @@ class Budget:
 
     samples: int | None = None
     seconds: float | None = None
+    training_only: bool = False  # stop when training ends (sharded runs: production is in shards)
 
     def done(self, production_samples: int, elapsed_s: float) -> bool:
         if self.samples is not None and production_samples >= self.samples:
@@ -346,12 +348,15 @@ class Sampler:
         stop_when : callable, optional
             Called as ``stop_when(sampler)`` after each checkpoint; True ends the run there.
         """
-        previous = {sig: signal.signal(sig, self.request_stop) for sig in (signal.SIGINT, signal.SIGTERM)}
+        in_main = threading.current_thread() is threading.main_thread()  # a Dask task runs in a worker thread
+        previous = {sig: signal.signal(sig, self.request_stop) for sig in (signal.SIGINT, signal.SIGTERM)
+                    if in_main}
         try:
             if self.cycle == 0 and self.next_chunk == 0:
                 self.flush()  # checkpoint zero: resume works even before the first chunk
             self._maybe_end_training()
-            while not self._stop and not budget.done(self.production_samples, self.elapsed_s):
+            while not self._stop and not budget.done(self.production_samples, self.elapsed_s) \
+                    and not (budget.training_only and self.production):
                 self._cycle_start = time.perf_counter()
                 self.run_cycle()
                 self.elapsed_s += time.perf_counter() - self._cycle_start
