@@ -62,11 +62,14 @@ def part_seconds(stats: pstats.Stats) -> dict[str, float]:
         ``{part: seconds}`` for every name in ``PARTS``.
     """
     out = dict.fromkeys(PARTS, 0.0)
-    for key, (_, _, _, _, callers) in stats.stats.items():
+    for key, (_, _, _, cumulative, callers) in stats.stats.items():
         part = _part_of(key)
         if part is None:
             continue
-        out[part] += sum(ct for caller, (_, _, _, ct) in callers.items() if _part_of(caller) is None)
+        # No callers: called from a frame entered before the profiler was switched on (the
+        # sampler's run loop calls flush so), which belongs to no part.
+        out[part] += (sum(ct for caller, (_, _, _, ct) in callers.items() if _part_of(caller) is None)
+                      if callers else cumulative)
     return out
 
 

@@ -15,6 +15,7 @@ from __future__ import annotations
 import numpy as np
 import torch
 import zuko
+from scipy.special import i0e, logsumexp
 from torch.distributions import Categorical, Independent, MixtureSameFamily, VonMises
 from zuko.lazy import UnconditionalDistribution
 
@@ -170,51 +171,68 @@ class TorsionFlow(torch.nn.Module):
                generator: torch.Generator | None = None) -> tuple[torch.Tensor, torch.Tensor]:
         """Draw ``n`` vectors of the flow's torsions given one context ``(n_context,)``, with
         their log q: shapes ``(n, n_flow)``, ``(n,)``."""
+        contexts = None if context is None else torch.as_tensor(context, dtype=torch.float64)[None]
+        t, log_q = self.sample_each(n, contexts, 1, generator)
+        return t[0], log_q[0]
+
+    def sample_each(self, n: int, contexts: torch.Tensor | None, n_contexts: int,
+                    generator: torch.Generator | None = None) -> tuple[torch.Tensor, torch.Tensor]:
+        """Draw ``n`` vectors for each of ``n_contexts`` contexts ``(n_contexts, n_context)`` in
+        one pass through the networks, with their log q: shapes ``(n_contexts, n, n_flow)``,
+        ``(n_contexts, n)``. ``contexts`` may be None (or have no columns) for an unconditional
+        flow."""
         with torch.no_grad():
-            context = self._context(context)
+            z = None if self.n_context == 0 else self._context(contexts)
             if generator is not None:
                 state = torch.get_rng_state()
                 _seed_cpu(generator)
             try:
-                t, log_q = self.flow(context).rsample_and_log_prob((n,))
+                if z is None:
+                    t, log_q = self.flow(None).rsample_and_log_prob((n_contexts, n))
+                else:  # batch shape (n_contexts,): draws come as (n, n_contexts, ...)
+                    t, log_q = self.flow(z).rsample_and_log_prob((n,))
+                    t, log_q = t.transpose(0, 1), log_q.transpose(0, 1)
             finally:
                 if generator is not None:
                     torch.set_rng_state(state)
         t = torch.remainder(t + np.pi, 2 * np.pi) - np.pi
         return t, log_q
 
-    def _marginal(self) -> tuple[torch.Tensor, ...]:
-        """The mixtures' (loc, kappa, logits) of every moving torsion, each ``(n_moving, n_components)``."""
+    def _marginal(self) -> tuple[np.ndarray, ...]:
+        """The mixtures' (loc, kappa, log weights) of every moving torsion, each
+        ``(n_moving, n_components)``, as numpy arrays (the one-torsion moves work in numpy)."""
         base = self.flow.base
         out = []
         for flow_part, other_part in ((base._0, self.other_loc), (base._1, self.other_kappa),
                                       (base._2, self.other_logits)):
-            full = torch.empty(self.n_moving, flow_part.shape[1], dtype=torch.float64)
-            full[self.flow_columns], full[self.other_columns] = flow_part, other_part
+            full = np.empty((self.n_moving, flow_part.shape[1]))
+            full[self.flow_columns.numpy()] = flow_part.detach().numpy()
+            full[self.other_columns.numpy()] = other_part.detach().numpy()
             out.append(full)
-        return tuple(out)
+        loc, kappa, logits = out
+        return loc, kappa, logits - logsumexp(logits, axis=1, keepdims=True)
 
-    def marginal_log_prob(self, index: torch.Tensor, torsions_rad: torch.Tensor) -> torch.Tensor:
-        """log of the base's one-torsion marginal q_i(t), for torsions ``index`` (shape ``(n,)``)."""
-        loc, kappa, logits = (a[index] for a in self._marginal())
-        return _mixture(loc, kappa, logits).base_dist.log_prob(torch.as_tensor(torsions_rad, dtype=torch.float64))
+    def marginal_log_prob(self, index, torsions_rad) -> np.ndarray:
+        """log of the base's one-torsion marginal q_i(t), for torsions ``index`` (shape ``(n,)``).
 
-    def marginal_sample(self, index: torch.Tensor, generator: torch.Generator | None = None) -> torch.Tensor:
-        """One draw from the base's marginal of each torsion in ``index`` (shape ``(n,)``)."""
-        loc, kappa, logits = (a[index] for a in self._marginal())
-        pick = torch.multinomial(torch.softmax(logits, -1), 1, generator=generator)[:, 0]
-        rows = torch.arange(len(index))
-        mixture = _mixture(loc[rows, pick][:, None], kappa[rows, pick][:, None],
-                           torch.zeros(len(index), 1, dtype=torch.float64))
-        if generator is not None:
-            state = torch.get_rng_state()
-            _seed_cpu(generator)
-        try:
-            value = mixture.sample()
-        finally:
-            if generator is not None:
-                torch.set_rng_state(state)
-        return torch.remainder(value + np.pi, 2 * np.pi) - np.pi
+        The von Mises density exp(kappa cos(t - loc)) / (2 pi I0(kappa)) written with the scaled
+        Bessel function i0e(kappa) = exp(-kappa) I0(kappa), stable for every kappa.
+        """
+        loc, kappa, log_w = (a[np.asarray(index)] for a in self._marginal())
+        t = np.asarray(torsions_rad, dtype=float)[:, None]
+        log_pdf = kappa * (np.cos(t - loc) - 1.0) - np.log(2 * np.pi * i0e(kappa))
+        return logsumexp(log_w + log_pdf, axis=1)
+
+    def marginal_sample(self, index, rng: np.random.Generator) -> np.ndarray:
+        """One draw from the base's marginal of each torsion in ``index`` (shape ``(n,)``):
+        a component by its weight, then numpy's von Mises sampler (vectorized, in C)."""
+        loc, kappa, log_w = (a[np.asarray(index)] for a in self._marginal())
+        cumulative = np.cumsum(np.exp(log_w), axis=1)
+        pick = np.minimum((cumulative < rng.random(len(loc))[:, None] * cumulative[:, -1:]).sum(1),
+                          loc.shape[1] - 1)
+        rows = np.arange(len(loc))
+        value = rng.vonmises(loc[rows, pick], kappa[rows, pick])
+        return np.remainder(value + np.pi, 2 * np.pi) - np.pi
 
     def fit_step(self, optimizer: torch.optim.Optimizer, torsions_rad: torch.Tensor,
                  context: torch.Tensor | None = None, context_noise: float = 0.0,

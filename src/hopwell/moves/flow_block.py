@@ -41,7 +41,10 @@ proposals from each of 150 later states):
 
 The K proposals of one block are drawn from the walker's state at the block's start and tried
 in turn as a chain of independence steps (a step after an acceptance compares with the new
-state's q and u), one guard call and one energy loop for the block. Proposals flagged by the
+state's q and u). All walkers' blocks are drawn together (one pass through the flow's
+networks, one rebuild, one guard call and one energy loop), which changes nothing in the
+ratio: each walker's proposals depend on its own state only, and the walkers move
+independently. Proposals flagged by the
 clash or stereo guard (:class:`hopwell.coords.guards.ProposalGuard`) have target density zero:
 rejected, and never sent to OpenMM.
 """
@@ -107,56 +110,71 @@ class FlowBlock:
         self.counters = {"training": MoveCounters(), "production": MoveCounters()}
         self.production = False
 
-    def _block(self, walkers: Walkers, walker: int, streams: RandomStreams) -> dict:
-        k, kT, trainer = self.k, self.evaluator.kT, self.trainer
-        zmat = trainer.zmat
+    def _draw(self, walkers: Walkers, which: np.ndarray, streams: RandomStreams):
+        """Every walker's K proposals in one flow pass, one rebuild, one guard call and one
+        energy loop: positions ``(W, K, n_atoms, 3)``, log q ``(W, K)``, log J ``(W, K)``, log q
+        of the current states ``(W,)``, energies ``(W, K)`` and rejection causes ``(W, K)``."""
+        k, trainer = self.k, self.trainer
+        zmat, rows, n = trainer.zmat, trainer.flow_rows, len(which)
         with torch.no_grad():
-            current = cartesian_to_internal(zmat, torch.as_tensor(walkers.positions_nm[walker:walker + 1]))
-            context = trainer.conditioning(current)[0]
-            rows = trainer.flow_rows
-            t_new, log_q_new = trainer.flow.sample(k, context, streams.torch)
-            torsions = current.torsions_rad.repeat(k, 1)
-            torsions[:, rows] = t_new
+            current = cartesian_to_internal(zmat, torch.as_tensor(walkers.positions_nm[which]))
+            context = trainer.conditioning(current)
+            t_new, log_q_new = trainer.flow.sample_each(k, context, n, streams.torch)
+            torsions = current.torsions_rad.repeat_interleave(k, 0)
+            torsions[:, rows] = t_new.reshape(n * k, -1)
             pos_new, log_j_new = internal_to_cartesian(
-                zmat, current.bonds_nm.repeat(k, 1), current.angles_rad.repeat(k, 1), torsions)
-            log_q_cur = float(trainer.flow.log_prob(current.torsions_rad[:, rows], context)[0])
+                zmat, current.bonds_nm.repeat_interleave(k, 0), current.angles_rad.repeat_interleave(k, 0), torsions)
+            log_q_cur = trainer.flow.log_prob(current.torsions_rad[:, rows], context).numpy()
         pos_new = pos_new.numpy()
-        log_q_new, log_j_new = log_q_new.numpy(), log_j_new.numpy()
         mask = self.guard(pos_new)
         rejected_by = np.where(mask.clash, REJECT_CLASH, np.where(mask.stereo, REJECT_STEREO, REJECT_NONE))
-        energy = np.full(k, np.nan)
+        energy = np.full(n * k, np.nan)
         ok = rejected_by == REJECT_NONE
         if ok.any():
             energy[ok] = self.evaluator.energies_kj(pos_new[ok])
         rejected_by[ok & ~np.isfinite(energy)] = REJECT_CLASH
-        accepted = np.zeros(k, dtype=bool)
+        shape = (n, k)
+        return (pos_new.reshape(shape + pos_new.shape[1:]), log_q_new.numpy(), log_j_new.numpy().reshape(shape),
+                log_q_cur, energy.reshape(shape), rejected_by.reshape(shape))
+
+    def _chain(self, walkers: Walkers, walker: int, positions_nm: np.ndarray, log_q_new: np.ndarray,
+               log_q_cur: float, energy: np.ndarray, rejected_by: np.ndarray, streams: RandomStreams) -> np.ndarray:
+        """One walker's K proposals tried in turn as independence steps; the accepted flags."""
+        kT = self.evaluator.kT
+        accepted = np.zeros(self.k, dtype=bool)
         u_cur = walkers.energies_kj[walker] / kT
-        log_u = np.log(streams.numpy.random(k))
+        log_u = np.log(streams.numpy.random(self.k))
         for i in np.flatnonzero(rejected_by == REJECT_NONE):
             # J(q') = J(q): bonds and angles are kept.
             log_alpha = -(energy[i] / kT - u_cur) + (log_q_cur - log_q_new[i])
             if log_u[i] < log_alpha:
                 accepted[i] = True
                 u_cur, log_q_cur = energy[i] / kT, log_q_new[i]
-                walkers.set(walker, pos_new[i], energy[i])
+                walkers.set(walker, positions_nm[i], energy[i])
         counters = self.counters["production" if self.production else "training"]
-        counters.proposed += k
+        counters.proposed += self.k
         counters.accepted += int(accepted.sum())
         counters.clash += int((rejected_by == REJECT_CLASH).sum())
         counters.stereo += int((rejected_by == REJECT_STEREO).sum())
-        counters.recent.append((int(accepted.sum()), k))
-        return {
-            "positions_nm": pos_new.astype(np.float32), "energy_kj": energy, "log_q": log_q_new,
-            "log_jacobian": log_j_new, "walker": np.full(k, walker, np.int32), "accepted": accepted,
-            "rejected_by": rejected_by.astype(np.int8),
-        }
+        counters.recent.append((int(accepted.sum()), self.k))
+        return accepted
 
     def apply(self, walkers: Walkers, which: np.ndarray, streams: RandomStreams) -> MoveResult:
-        blocks = [self._block(walkers, int(w), streams) for w in which]
-        accepted = np.array([bool(b["accepted"].any()) for b in blocks])
-        proposals = ({key: np.concatenate([b[key] for b in blocks]) for key in blocks[0]}
-                     if self.production and blocks else None)
-        return MoveResult(accepted, proposals=proposals)
+        which = np.asarray(which, dtype=np.int64)
+        if len(which) == 0:
+            return MoveResult(np.zeros(0, dtype=bool), proposals=None)
+        positions, log_q_new, log_j_new, log_q_cur, energy, rejected_by = self._draw(walkers, which, streams)
+        accepted = np.stack([self._chain(walkers, int(w), positions[j], log_q_new[j], float(log_q_cur[j]),
+                                         energy[j], rejected_by[j], streams) for j, w in enumerate(which)])
+        proposals = None
+        if self.production:
+            proposals = {
+                "positions_nm": positions.reshape((-1,) + positions.shape[2:]).astype(np.float32),
+                "energy_kj": energy.ravel(), "log_q": log_q_new.ravel(), "log_jacobian": log_j_new.ravel(),
+                "walker": np.repeat(which, self.k).astype(np.int32), "accepted": accepted.ravel(),
+                "rejected_by": rejected_by.ravel().astype(np.int8),
+            }
+        return MoveResult(accepted.any(axis=1), proposals=proposals)
 
     def state_dict(self) -> dict:
         return {name: c.to_json() for name, c in self.counters.items()}

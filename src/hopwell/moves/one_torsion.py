@@ -9,7 +9,9 @@ independence proposal for t_i, and J (bonds and angles only) is unchanged, so::
 
 The choice of i is the same in both directions and cancels. Proposals are drawn and scored in
 batches from the current state; after an acceptance the rest of the batch is dropped and drawn
-again from the new state, so every accepted proposal was made from the state it replaces.
+again from the new state, so every accepted proposal was made from the state it replaces. The
+batches of all walkers are drawn, guarded and scored together (one guard call and one energy
+loop per round); each walker's proposals depend on its own state only.
 
 Where torsion row i is a rigid rotation (:func:`hopwell.coords.rotate.torsion_axes`), the
 proposal turns the atoms beyond its bond by ``t_i' - t_i`` in Cartesian space instead of
@@ -83,59 +85,72 @@ class OneTorsion:
         self.axis_of = np.array([int(np.flatnonzero(rigid == row)[0]) if row in rigid else -1
                                  for row in moving], dtype=np.int64)
 
-    def _propose(self, position_nm: np.ndarray, index: np.ndarray, new: torch.Tensor,
-                 current) -> np.ndarray:
-        """Positions ``(n, n_atoms, 3)`` with moving column ``index[j]`` set to ``new[j]``."""
+    def _propose(self, positions_nm: np.ndarray, current, owner: np.ndarray, index: np.ndarray,
+                 new: np.ndarray) -> np.ndarray:
+        """Positions ``(n, n_atoms, 3)``: proposal ``j`` sets moving column ``index[j]`` of the
+        state ``owner[j]`` (of ``positions_nm`` and its internal coordinates ``current``) to
+        ``new[j]``."""
         rows = np.asarray(self.trainer.moving)[index]
-        old = current.torsions_rad[0, rows].numpy()
+        old = current.torsions_rad.numpy()[owner, rows]
         axis = self.axis_of[index]
-        out = np.empty((len(index),) + position_nm.shape)
+        out = np.empty((len(index),) + positions_nm.shape[1:])
         turned = axis >= 0
         if turned.any():
-            out[turned] = rotate_torsions(np.broadcast_to(position_nm, (int(turned.sum()),) + position_nm.shape),
-                                          self.axes, axis[turned], new.numpy()[turned] - old[turned])
+            out[turned] = rotate_torsions(positions_nm[owner[turned]], self.axes, axis[turned],
+                                          new[turned] - old[turned])
         if not turned.all():
             rebuilt = np.flatnonzero(~turned)
-            torsions = current.torsions_rad.repeat(len(rebuilt), 1)
-            torsions[torch.arange(len(rebuilt)), torch.as_tensor(rows[rebuilt])] = new[rebuilt]
-            positions, _ = internal_to_cartesian(self.trainer.zmat, current.bonds_nm.repeat(len(rebuilt), 1),
-                                                 current.angles_rad.repeat(len(rebuilt), 1), torsions)
+            from_state = torch.as_tensor(owner[rebuilt])
+            torsions = current.torsions_rad[from_state]
+            torsions[torch.arange(len(rebuilt)), torch.as_tensor(rows[rebuilt])] = torch.as_tensor(new[rebuilt])
+            positions, _ = internal_to_cartesian(self.trainer.zmat, current.bonds_nm[from_state],
+                                                 current.angles_rad[from_state], torsions)
             out[rebuilt] = positions.numpy()
         return out
 
-    def _walker(self, walkers: Walkers, walker: int, streams: RandomStreams) -> bool:
-        zmat, flow, kT = self.trainer.zmat, self.trainer.flow, self.evaluator.kT
-        moving = torch.as_tensor(self.trainer.moving)
-        remaining, moved = self.n, False
-        while remaining > 0:
-            with torch.no_grad():
-                current = cartesian_to_internal(zmat, torch.as_tensor(walkers.positions_nm[walker:walker + 1]))
-                index = torch.as_tensor(streams.numpy.integers(0, len(moving), remaining))
-                new = flow.marginal_sample(index, streams.torch)
-                old = current.torsions_rad[0, moving[index]]
-                log_q_ratio = (flow.marginal_log_prob(index, old) - flow.marginal_log_prob(index, new)).numpy()
-            positions = self._propose(walkers.positions_nm[walker], index.numpy(), new, current)
-            mask = self.guard(positions)
-            ok = ~np.asarray(mask.rejected)
-            energy = np.full(remaining, np.inf)
-            if ok.any():
-                energy[ok] = self.evaluator.energies_kj(positions[ok])
-            log_u = np.log(streams.numpy.random(remaining))
-            log_alpha = -(energy - walkers.energies_kj[walker]) / kT + log_q_ratio
-            hits = np.flatnonzero(np.isfinite(energy) & (log_u < log_alpha))
-            used = int(hits[0]) + 1 if len(hits) else remaining
-            self.counters.proposed += used
-            self.counters.clash += int(np.asarray(mask.clash)[:used].sum())
-            self.counters.stereo += int(np.asarray(mask.stereo)[:used].sum())
-            if len(hits):
-                self.counters.accepted += 1
-                walkers.set(walker, positions[hits[0]], energy[hits[0]])
-                moved = True
-            remaining -= used
-        return moved
-
     def apply(self, walkers: Walkers, which: np.ndarray, streams: RandomStreams) -> MoveResult:
-        return MoveResult(np.array([self._walker(walkers, int(w), streams) for w in which], dtype=bool))
+        """Each walker in ``which`` gets its proposals; all walkers' current batches are drawn,
+        guarded and scored together, then tried walker by walker."""
+        which = np.asarray(which, dtype=np.int64)
+        flow, kT, moving = self.trainer.flow, self.evaluator.kT, np.asarray(self.trainer.moving)
+        remaining = np.full(len(which), self.n)
+        moved = np.zeros(len(which), dtype=bool)
+        while (active := np.flatnonzero(remaining > 0)).size:
+            walker_ids = which[active]
+            positions_nm = walkers.positions_nm[walker_ids]
+            with torch.no_grad():
+                current = cartesian_to_internal(self.trainer.zmat, torch.as_tensor(positions_nm))
+            counts = remaining[active]
+            owner = np.repeat(np.arange(len(active)), counts)
+            bounds = np.concatenate([[0], np.cumsum(counts)])
+            index = streams.numpy.integers(0, len(moving), len(owner))
+            new = flow.marginal_sample(index, streams.numpy)
+            old = current.torsions_rad.numpy()[owner, moving[index]]
+            log_q_ratio = flow.marginal_log_prob(index, old) - flow.marginal_log_prob(index, new)
+            proposed = self._propose(positions_nm, current, owner, index, new)
+            mask = self.guard(proposed)
+            ok = ~np.asarray(mask.rejected)
+            energy = np.full(len(owner), np.inf)
+            if ok.any():
+                energy[ok] = self.evaluator.energies_kj(proposed[ok])
+            log_u = np.log(streams.numpy.random(len(owner)))
+            log_alpha = -(energy - walkers.energies_kj[walker_ids][owner]) / kT + log_q_ratio
+            hit = np.isfinite(energy) & (log_u < log_alpha)
+            clash, stereo = np.asarray(mask.clash), np.asarray(mask.stereo)
+            for j, (slot, walker) in enumerate(zip(active, walker_ids)):
+                part = slice(bounds[j], bounds[j + 1])
+                hits = np.flatnonzero(hit[part])
+                used = int(hits[0]) + 1 if len(hits) else int(counts[j])
+                self.counters.proposed += used
+                self.counters.clash += int(clash[part][:used].sum())
+                self.counters.stereo += int(stereo[part][:used].sum())
+                if len(hits):
+                    self.counters.accepted += 1
+                    first = bounds[j] + hits[0]
+                    walkers.set(int(walker), proposed[first], energy[first])
+                    moved[slot] = True
+                remaining[slot] -= used
+        return MoveResult(moved)
 
     def state_dict(self) -> dict:
         return {self.name: self.counters.to_json()}
