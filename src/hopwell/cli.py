@@ -50,9 +50,13 @@ def _fail_cleanly(fn):
 
 
 def _builder_options(fn):
-    """Options shared by every command that builds a system."""
+    """The INPUT argument and the options shared by every command that builds a system."""
+    return click.argument("input_spec", metavar="INPUT")(_build_flags(fn))
+
+
+def _build_flags(fn):
+    """The build options alone (``batch`` applies them to each molecule of its file)."""
     options = [
-        click.argument("input_spec", metavar="INPUT"),
         click.option(
             "--forcefield",
             type=click.Choice(["mmff94", "mmff94s", "amber14"]),
@@ -288,6 +292,24 @@ def _run_sharded(spec, run_dir, options, settings, budget, walkers, platform, wo
     click.echo(f"\nrun finished: {len(done)} shard(s) sampled in {run_dir}/shards", err=True)
 
 
+def _run_settings(hours, samples, temperature_K, training_cycles, langevin_steps, proposals, method,
+                  replicas, top_temperature_K, local_move, random_seed):
+    """The budget and sampler settings of ``run`` and ``batch`` from their options, checked."""
+    from hopwell.sampling.run import check_settings, make_budget, training_schedule
+    from hopwell.sampling.sampler import SamplerSettings
+
+    budget = make_budget(hours, samples)
+    training_cycles, hours_share = training_schedule(method, training_cycles, budget)
+    settings = SamplerSettings(
+        temperature_K=temperature_K, langevin_steps=langevin_steps, proposals_per_cycle=proposals,
+        seed=random_seed, method=method, local_move=local_move,
+        training_cycles=training_cycles, training_seconds=hours_share,
+        replicas=replicas, top_temperature_K=top_temperature_K,
+    )
+    check_settings(settings)
+    return budget, settings
+
+
 def _load_config(ctx, param, value):
     """Take option defaults from a TOML file whose keys are the long option names."""
     if value is None:
@@ -339,24 +361,12 @@ def run(run_dir, hours, samples, temperature_K, walkers, training_cycles, langev
     """
     import torch
 
-    from hopwell.sampling.run import (
-        check_settings,
-        make_budget,
-        start_run,
-        training_schedule,
-    )
-    from hopwell.sampling.sampler import SamplerSettings
+    from hopwell.sampling.run import start_run
     from hopwell.systems.builder import BuildOptions
 
-    budget = make_budget(hours, samples)
-    training_cycles, hours_share = training_schedule(method, training_cycles, budget)
-    settings = SamplerSettings(
-        temperature_K=temperature_K, langevin_steps=langevin_steps, proposals_per_cycle=proposals,
-        seed=kwargs["random_seed"], method=method, local_move=local_move,
-        training_cycles=training_cycles, training_seconds=hours_share,
-        replicas=replicas, top_temperature_K=top_temperature_K,
-    )
-    check_settings(settings)
+    budget, settings = _run_settings(hours, samples, temperature_K, training_cycles, langevin_steps,
+                                     proposals, method, replicas, top_temperature_K, local_move,
+                                     kwargs["random_seed"])
     options = BuildOptions(**{k: v for k, v in kwargs.items() if k != "input_spec"})
     torch.set_num_threads(1)  # OpenMM and torch alternate; one thread each avoids oversubscription
     if workers is not None or scheduler or shards is not None:
@@ -375,8 +385,9 @@ def run(run_dir, hours, samples, temperature_K, walkers, training_cycles, langev
 @click.option("--hours", type=float, default=None, help="New wall-clock budget (hours, total).")
 @click.option("--samples", type=int, default=None, help="New total of production samples.")
 @click.option("--workers", type=int, default=None,
-              help="Sharded runs: Dask worker processes for the unfinished shards (0: one per core).")
-@click.option("--scheduler", default=None, help="Sharded runs: an existing Dask cluster's address.")
+              help="Sharded runs and batches: Dask worker processes for the unfinished shards or"
+                   " molecules (0: one per core).")
+@click.option("--scheduler", default=None, help="Sharded runs and batches: an existing Dask cluster's address.")
 @_fail_cleanly
 def resume(run_dir, hours, samples, workers, scheduler):
     """Continue RUN_DIR from its last checkpoint, losing and duplicating nothing.
@@ -387,8 +398,15 @@ def resume(run_dir, hours, samples, workers, scheduler):
     """
     import torch
 
+    from hopwell.sampling.batch import is_batch
     from hopwell.sampling.run import make_budget, resume_run, saved_budget
 
+    if is_batch(Path(run_dir)):  # a batch: its unfinished molecules, each with its own budget
+        if hours is not None or samples is not None:
+            raise InputError(f"{run_dir} is a batch and resumes with its budget; to sample one molecule"
+                             f" longer: hopwell resume {run_dir}/NAME --hours H")
+        _run_batch(Path(run_dir), workers, scheduler)
+        return
     budget = saved_budget(Path(run_dir)) if hours is None and samples is None else make_budget(hours, samples)
     torch.set_num_threads(1)
     from hopwell.sampling.shards import n_planned, train_then_shard
@@ -401,6 +419,77 @@ def resume(run_dir, hours, samples, workers, scheduler):
     sampler = resume_run(Path(run_dir), budget, progress=_progress_printer(budget))
     click.echo(f"\nrun finished at cycle {sampler.cycle}: {sampler.production_samples} production"
                f" samples in {run_dir}", err=True)
+
+
+def _check_workers(workers):
+    if workers is not None and workers < 0:
+        raise InputError(f"--workers must be 0 (one per core) or more, got {workers}")
+
+
+def _run_batch(batch_dir: Path, workers, scheduler):
+    """Schedule a batch's unfinished molecules, print progress lines, then each failure and a total."""
+    from hopwell.sampling.batch import run_batch
+
+    _check_workers(workers)
+
+    def show(counts):
+        where = f"; dashboard {counts['dashboard']}" if counts["dashboard"] else ""
+        click.echo(f"batch: {counts['done']}/{counts['total']} done, {counts['running']} running,"
+                   f" {counts['failed']} failed, {counts['waiting']} waiting{where}", err=True)
+
+    rows = run_batch(batch_dir, workers or None, scheduler, progress=show)
+    failed = [row for row in rows if row["status"] == "failed"]
+    for row in failed:
+        click.echo(f"  {row['name']} failed: {row['error']}", err=True)
+    left = sum(row["status"] == "unfinished" for row in rows)
+    click.echo(f"batch finished: {sum(row['status'] == 'done' for row in rows)} done, {len(failed)} failed"
+               + (f", {left} still in use by another process (resume later)" if left else "")
+               + f"; overview: {batch_dir / 'overview.html'}", err=True)
+
+
+@main.command()
+@click.option("--config", type=click.Path(dir_okay=False), default=None, is_eager=True,
+              expose_value=False, callback=_load_config,
+              help="TOML file of option values (keys as the long option names); the command line wins.")
+@click.argument("molecules_file", metavar="MOLECULES", type=click.Path(dir_okay=False))
+@_build_flags
+@click.option("-o", "--output", "batch_dir", required=True, type=click.Path(file_okay=False),
+              help="Batch directory to create: one run directory per molecule, and the overview.")
+@_sampler_options
+@click.option("--workers", type=int, default=None,
+              help="Single-threaded Dask worker processes, one molecule at a time each [default: one per core].")
+@click.option("--scheduler", default=None, help="Run the molecules on the existing Dask cluster at this address.")
+@_fail_cleanly
+def batch(molecules_file, batch_dir, hours, samples, temperature_K, walkers, training_cycles,
+          langevin_steps, proposals, platform, method, replicas, top_temperature_K, local_move,
+          until_width, workers, scheduler, **kwargs):
+    """Run every molecule of MOLECULES, each as `hopwell run` would, into DIR/NAME.
+
+    MOLECULES is a SMILES file (one "SMILES name" a line), a CSV with name and SMILES
+    columns, or an SDF (record titles are the names; consecutive records with one title are
+    one molecule's known structures). Names must be safe as directory names. The budget is
+    each molecule's. DIR/overview.html (and .csv, .json) lists each molecule's verdict, main
+    states and populations, or its error; `hopwell resume DIR` runs the unfinished ones.
+
+    \b
+    Example:
+      hopwell batch systems/ligands/ligands.smi -o ligands --hours 1 --solvent obc2
+    """
+    from hopwell.sampling.batch import create_batch
+    from hopwell.sampling.run import _walkers
+    from hopwell.systems.builder import BuildOptions
+
+    if until_width is not None:
+        raise InputError("--until-width is not available in a batch; give --hours or --samples")
+    budget, settings = _run_settings(hours, samples, temperature_K, training_cycles, langevin_steps,
+                                     proposals, method, replicas, top_temperature_K, local_move,
+                                     kwargs["random_seed"])
+    _walkers(settings, walkers, 1)  # a bad --walkers is refused before any molecule starts
+    _check_workers(workers)
+    plan = create_batch(Path(molecules_file), Path(batch_dir), BuildOptions(**kwargs), settings, budget,
+                        n_walkers=walkers, platform=platform)
+    click.echo(f"hopwell batch: {len(plan['molecules'])} molecules into {batch_dir}", err=True)
+    _run_batch(Path(batch_dir), workers, scheduler)
 
 
 @main.command()

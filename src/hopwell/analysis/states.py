@@ -33,6 +33,7 @@ import numpy as np
 from rdkit import Chem
 
 from hopwell.analysis.labels import torsion_labels, well_name
+from hopwell.systems import rings as rg
 from hopwell.systems.backbone import BACKBONE_STATES, backbone_state
 from hopwell.systems.builder import STIFF_BOND, rotatable_bonds
 
@@ -47,6 +48,13 @@ CIS_TRANS_EDGES_RAD = np.radians([-90.0, 90.0])
 
 
 def state_torsions(mol: Chem.Mol) -> list[tuple[tuple[int, int, int, int], int]]:
+    """The dihedrals the automatic states are read from, each with its period: those of
+    :func:`bond_torsions`, then those naming each saturated six-ring's pucker and its axial
+    and equatorial substituents (:func:`hopwell.systems.rings.ring_torsions`, period 1)."""
+    return bond_torsions(mol) + [(atoms, 1) for atoms in rg.ring_torsions(mol)]
+
+
+def bond_torsions(mol: Chem.Mol) -> list[tuple[tuple[int, int, int, int], int]]:
     """One heavy-atom dihedral per rotatable bond, with its symmetry period (1 or 2).
 
     The period is 2 when the far atom's two other heavy neighbours are symmetry-equivalent
@@ -140,7 +148,10 @@ class StateModel:
     edges : tuple of numpy.ndarray
         Well boundaries per torsion (torsion kind only).
     combos : dict
-        Well-index tuple -> state index (torsion kind only); unlisted combinations are "other".
+        Well-index tuple, then one ring code per ring (:func:`hopwell.systems.rings.ring_codes`)
+        -> state index (torsion kind only); unlisted combinations are "other".
+    rings : tuple of hopwell.systems.rings.SixRing
+        Saturated six-rings; their torsions follow the ``len(edges)`` bond torsions.
     """
 
     kind: str
@@ -148,13 +159,13 @@ class StateModel:
     torsions: tuple
     edges: tuple = ()
     combos: dict | None = None
+    rings: tuple = ()
 
     def assign(self, dihedrals_rad: np.ndarray) -> np.ndarray:
         """State index of each sample from its dihedrals, shape ``(n, n_torsions)``."""
         if self.kind == "backbone":
             return backbone_state(np.degrees(dihedrals_rad[:, 0]), np.degrees(dihedrals_rad[:, 1]))
-        wells = np.stack([assign_wells(dihedrals_rad[:, t], self.edges[t], self.torsions[t][1])
-                          for t in range(len(self.torsions))], axis=1)
+        wells = _columns(dihedrals_rad, self.edges, self.torsions, self.rings)
         other = len(self.names) - 1
         return np.array([self.combos.get(tuple(w), other) for w in wells], dtype=int)
 
@@ -186,12 +197,23 @@ def _kept_combinations(wells: np.ndarray, cis_trans: list[bool]) -> list[tuple]:
     return [c for c in combos if c in keep]
 
 
+def _columns(dihedrals_rad: np.ndarray, edges: tuple, torsions, rings) -> np.ndarray:
+    """Per sample, the well index of each bond torsion and the code of each ring, ``(n, n_cols)``."""
+    d = np.asarray(dihedrals_rad).reshape(len(dihedrals_rad), -1)
+    wells = [assign_wells(d[:, t], edges[t], torsions[t][1]) for t in range(len(edges))]
+    codes = np.array(rg.signature(list(rings), d[:, len(edges):]), dtype=int).reshape(len(d), len(rings))
+    wells = np.stack(wells, axis=1) if wells else np.zeros((len(d), 0), dtype=int)
+    return np.concatenate([wells, codes], axis=1)
+
+
 def torsion_model(mol: Chem.Mol, dihedrals_rad: np.ndarray) -> StateModel:
     """Conformer states as combinations of torsion wells found in the pooled samples.
 
     Torsions about partial double bonds (:func:`cis_trans_torsions`) always get a cis and a
     trans well (:data:`CIS_TRANS_EDGES_RAD`), and each of their observed wells is in some state
-    (:func:`_kept_combinations`).
+    (:func:`_kept_combinations`); so is each observed state of a saturated six-ring (chair
+    with its axial substituents, or twist-boat: :mod:`hopwell.systems.rings`), so that a
+    rare axial chair is named rather than "other".
 
     Parameters
     ----------
@@ -199,23 +221,25 @@ def torsion_model(mol: Chem.Mol, dihedrals_rad: np.ndarray) -> StateModel:
     dihedrals_rad : numpy.ndarray, shape ``(n_samples, n_torsions)``
         The samples' values of :func:`state_torsions` (same order).
     """
-    torsions = state_torsions(mol)
-    if not torsions:
+    torsions, rings = bond_torsions(mol), tuple(rg.saturated_six_rings(mol))
+    if not torsions and not rings:
         return StateModel("torsions", ("rigid", "other"), (), (), {(): 0})
     cis_trans = cis_trans_torsions(mol, torsions)
     edges = tuple(CIS_TRANS_EDGES_RAD if fixed else well_edges(dihedrals_rad[:, t], p)
                   for t, ((_, p), fixed) in enumerate(zip(torsions, cis_trans)))
-    wells = np.stack([assign_wells(dihedrals_rad[:, t], edges[t], p)
-                      for t, (_, p) in enumerate(torsions)], axis=1)
-    kept = _kept_combinations(wells, cis_trans)
+    all_torsions = tuple(torsions) + tuple((atoms, 1) for ring in rings for atoms in ring.torsions)
+    wells = _columns(dihedrals_rad, edges, all_torsions, rings)
+    kept = _kept_combinations(wells, cis_trans + [True] * len(rings))
     tags = torsion_labels(mol, torsions)
     names = []
-    for combo in kept:  # e.g. "A:trans(180) B:gauche+(+65)" (hopwell.analysis.labels)
+    for combo in kept:  # e.g. "A:trans(180) B:gauche+(+65), ring 1 chair, C7 equatorial"
         members = np.all(wells == np.array(combo), axis=1)
-        names.append(" ".join(well_name(tags[t], float(well_label(dihedrals_rad[members, t], p)))
-                              for t, (_, p) in enumerate(torsions)))
-    return StateModel("torsions", tuple(names) + ("other",), tuple(torsions), edges,
-                      {c: i for i, c in enumerate(kept)})
+        parts = [" ".join(well_name(tags[t], float(well_label(dihedrals_rad[members, t], p)))
+                          for t, (_, p) in enumerate(torsions))]
+        parts += [rg.ring_state_name(ring, code) for ring, code in zip(rings, combo[len(torsions):])]
+        names.append(", ".join(part for part in parts if part))
+    return StateModel("torsions", tuple(names) + ("other",), all_torsions, edges,
+                      {c: i for i, c in enumerate(kept)}, rings)
 
 
 def dihedrals(xyz_nm: np.ndarray, topology: md.Topology, model_torsions) -> np.ndarray:

@@ -7,6 +7,7 @@ computes numbers.
 from __future__ import annotations
 
 import itertools
+import json
 from pathlib import Path
 
 import mdtraj as md
@@ -85,7 +86,8 @@ def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict
 
     n_walkers = series.shape[0]
     named = [model.kind == "backbone" or (model.kind == "user" and s < n_states - 1) for s in range(n_states)]
-    verdict = judge(series, pops, model.names, named, importance)
+    local_move = local_move_counts(store)
+    verdict = judge(series, pops, model.names, named, importance, local_move)
     summary = {
         "temperature_K": temperature,
         "verdict": verdict.label,
@@ -117,7 +119,10 @@ def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict
         "transitions_per_walker": [int(stats.count_transitions(row)) for row in series],
         "flow_acceptance_production": (production.flow_accepted / len(production.proposal_block)
                                        if len(production.proposal_block) else None),
-        "move_acceptance": move_acceptance(store),
+        # The share of Langevin segments rolled back joins the report's move acceptance line.
+        "move_acceptance": move_acceptance(store) | {"langevin_rolled_back": (
+            local_move["rolled_back"] / local_move["segments"] if local_move["segments"] else None)},
+        "local_move": local_move,
         "importance_sampling": importance,
         # A run without flow proposals still records a (never accepted) flow-move state.
         "acceptance_over_time": (acceptance_over_time(production.acceptance)
@@ -143,6 +148,24 @@ def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict
     if reweight:
         summary["reweighted"] = _reweighted(store, reweight, production, series, model, rng, n_boot)
     return summary
+
+
+def local_move_counts(store: RunStore) -> dict:
+    """Langevin segments run and rolled back, and production states failing the guard.
+
+    Summed over a sharded run's training and shards (each shard starts from the training run's
+    counters, so only what it added counts); a checkpoint older than a counter counts 0.
+    """
+    keys = {"segments": "proposed", "rolled_back": "rolled_back", "states_failing_guard": "outside_guard"}
+
+    def counts(run: RunStore) -> dict:
+        state = run.read_state()
+        saved = json.loads(str(state["stats"])).get("langevin", {}) if state is not None else {}
+        return {name: int(saved.get(key, 0)) for name, key in keys.items()}
+
+    own = counts(store)
+    shards = [counts(shard) for shard, _ in shard_stores(store.path)]
+    return {name: own[name] + sum(c[name] - own[name] for c in shards) for name in keys}
 
 
 def _reweighted(store, reweight, production, series, model, rng, n_boot) -> dict:

@@ -40,7 +40,7 @@ class Verdict:
 
 
 def judge(series: np.ndarray, estimate: stats.PopulationResult, names: list[str],
-          named: list[bool], importance: dict | None = None) -> Verdict:
+          named: list[bool], importance: dict | None = None, local_move: dict | None = None) -> Verdict:
     """Apply the verdict's rules to a run.
 
     Parameters
@@ -58,6 +58,11 @@ def judge(series: np.ndarray, estimate: stats.PopulationResult, names: list[str]
         The frozen flow's importance estimate (``populations``, ``ci95``, ``effective_samples``,
         ``proposals``); its disagreements are warnings, not reasons, because blockwise
         normalization biases it by O(1 / block size) (DEVELOPERS.md).
+    local_move : dict, optional
+        ``segments``, ``rolled_back`` and ``states_failing_guard`` of the Langevin move
+        (:func:`hopwell.analysis.summary.local_move_counts`): segments undone after the fact and
+        production states outside the guard, where the Monte Carlo moves are not reversible, are
+        warned about (both are expected to be 0).
 
     Returns
     -------
@@ -100,4 +105,10 @@ def judge(series: np.ndarray, estimate: stats.PopulationResult, names: list[str]
         if importance["effective_samples"] < MIN_IS_ESS_FRACTION * importance["proposals"]:
             out.warnings.append(f"heavy-tailed importance weights (ESS {importance['effective_samples']:.0f}"
                                 f" of {importance['proposals']} proposals)")
+    if local_move is not None and local_move.get("states_failing_guard", 0) > 0:
+        out.warnings.append(f"{local_move['states_failing_guard']} production Langevin state(s) failed the"
+                            " clash/stereo check; the Monte Carlo moves are exact only among states that pass it")
+    if local_move is not None and local_move.get("rolled_back", 0) > 0:
+        out.warnings.append(f"{local_move['rolled_back']} of {local_move['segments']} Langevin segments were"
+                            " rolled back after an energy explosion (a veto after the fact biases the chain)")
     return out

@@ -30,7 +30,7 @@ PARTS = {
     "OpenMM energies": [("systems/energy.py", "energies_kj")],
     "OpenMM dynamics": [("systems/energy.py", "langevin")],
     "flow sampling and scoring": [("flow/torsion.py", name) for name in (
-        "sample", "log_prob", "base_log_prob", "marginal_sample", "marginal_log_prob")],
+        "sample", "sample_each", "log_prob", "base_log_prob", "marginal_sample", "marginal_log_prob")],
     "coordinate conversions": [("coords/internal.py", "cartesian_to_internal"),
                                ("coords/internal.py", "internal_to_cartesian"),
                                ("coords/rotate.py", "rotate_torsions"),

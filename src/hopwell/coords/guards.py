@@ -22,6 +22,8 @@ import numpy as np
 import torch
 from rdkit import Chem
 
+from hopwell.errors import InputError
+
 # Bondi, J. Phys. Chem. 68, 441 (1964): van der Waals radii in Angstrom, by atomic number.
 BONDI_RADII_ANGSTROM = {
     1: 1.20, 6: 1.70, 7: 1.55, 8: 1.52, 9: 1.47, 15: 1.80, 16: 1.80, 17: 1.75, 35: 1.85, 53: 1.98,
@@ -158,6 +160,36 @@ class ClashGuard:
         finite = torch.isfinite(x).all(dim=2).all(dim=1)
         clash = torch.any(d2_nm2 < threshold_nm**2, dim=1) | ~finite
         return _as_output(clash, is_numpy)
+
+    def explain(self, positions_nm) -> list[str | None]:
+        """Why each structure of a batch clashes, in words (None where it does not).
+
+        Parameters
+        ----------
+        positions_nm : np.ndarray or torch.Tensor, shape (batch, n_atoms, 3)
+
+        Returns
+        -------
+        list of str or None, length batch
+            The closest pair against its threshold (atoms numbered from 1), or the non-finite
+            coordinates.
+        """
+        x, _ = _as_batch(positions_nm, self.n_atoms)
+        x = x.cpu().numpy()
+        out: list[str | None] = []
+        for xyz in x:
+            if not np.isfinite(xyz).all():
+                out.append("non-finite coordinates")
+                continue
+            d_nm = np.linalg.norm(xyz[self.pairs[:, 0]] - xyz[self.pairs[:, 1]], axis=-1)
+            k = int(np.argmin(d_nm / self.threshold_nm)) if len(d_nm) else 0
+            if not len(d_nm) or d_nm[k] >= self.threshold_nm[k]:
+                out.append(None)
+                continue
+            i, j = (int(a) + 1 for a in self.pairs[k])
+            out.append(f"atoms {i} and {j} are {10 * d_nm[k]:.2f} A apart (clash below"
+                       f" {10 * self.threshold_nm[k]:.2f} A)")
+        return out
 
 
 def _rigid_nitrogens(mol: Chem.Mol) -> list[list[int]]:
@@ -301,6 +333,34 @@ class StereoGuard:
         changed = ~(kept_centres.all(dim=1) & kept_bonds.all(dim=1))
         return _as_output(changed, is_numpy)
 
+    def explain(self, positions_nm) -> list[str | None]:
+        """Which stereo elements of each structure differ from the reference (None: none).
+
+        Parameters
+        ----------
+        positions_nm : np.ndarray or torch.Tensor, shape (batch, n_atoms, 3)
+
+        Returns
+        -------
+        list of str or None, length batch
+            The changed centres and double bonds, atoms numbered from 1.
+        """
+        x, _ = _as_batch(positions_nm, self.n_atoms)
+        centres = torch.as_tensor(self.centres, device=x.device)
+        bonds = torch.as_tensor(self.double_bonds, device=x.device)
+        volume = _triple(_centre_edges(x, centres))
+        normal_1, normal_2 = _dihedral_normals(x, bonds)
+        cos = torch.sum(normal_1 * normal_2, dim=-1)
+        centre_ok = (volume * torch.as_tensor(self.centre_signs, device=x.device) > 0).cpu().numpy()
+        bond_ok = (cos * torch.as_tensor(self.double_bond_signs, device=x.device) > 0).cpu().numpy()
+        out: list[str | None] = []
+        for c_ok, b_ok in zip(centre_ok, bond_ok):
+            parts = [f"stereocentre at atom {int(self.centres[k, 0]) + 1}" for k in np.flatnonzero(~c_ok)]
+            parts += [f"double bond {int(self.double_bonds[k, 1]) + 1}={int(self.double_bonds[k, 2]) + 1}"
+                      for k in np.flatnonzero(~b_ok)]
+            out.append(", ".join(parts) + " unlike the reference structure's" if parts else None)
+        return out
+
 
 class GuardMask(NamedTuple):
     """Per-sample rejection causes, each of shape (batch,), numpy or torch like the input.
@@ -349,3 +409,28 @@ class ProposalGuard:
     def __call__(self, positions_nm) -> GuardMask:
         """Both masks of a batch of positions, shape (batch, n_atoms, 3) in nm."""
         return GuardMask(clash=self.clash(positions_nm), stereo=self.stereo(positions_nm))
+
+    def explain(self, positions_nm) -> list[str | None]:
+        """Why each structure of a batch fails either guard, in words (None where it passes)."""
+        reasons = zip(self.clash.explain(positions_nm), self.stereo.explain(positions_nm))
+        return ["; ".join(r for r in pair if r) or None for pair in reasons]
+
+
+def refuse_failing_seeds(guard: ProposalGuard, seeds_nm) -> None:
+    """Raise :class:`~hopwell.errors.InputError` naming the first seed that fails ``guard``.
+
+    Every Monte Carlo proposal from a state that fails the guard is rejected, and the moves are
+    reversible only among states that pass it, so a walker started there would sample by its
+    local move alone.
+
+    Parameters
+    ----------
+    guard : ProposalGuard
+    seeds_nm : np.ndarray, shape (n_seeds, n_atoms, 3)
+    """
+    failed = np.flatnonzero(np.asarray(guard(seeds_nm).rejected))
+    if len(failed):
+        k = int(failed[0])
+        why = guard.explain(np.asarray(seeds_nm)[k:k + 1])[0]
+        raise InputError(f"seed structure {k + 1} of {len(seeds_nm)} fails the clash/stereo check ({why});"
+                         " fix or remove that structure")

@@ -12,6 +12,11 @@ and is exact for any time step. A segment whose energy rises by more than ``EXPL
 turns non-finite is an integration failure, not thermal motion: it is undone (the walker keeps
 its state), logged and counted (``rolled_back``); such vetoes after the fact bias the chain if
 they are frequent, so the report shows the count.
+
+The Monte Carlo moves reject every proposal that fails the clash or stereo guard
+(:mod:`hopwell.coords.guards`), so they are reversible only among states that pass it. Seeds that
+fail it are refused; in production each state a segment leads to is checked, and those that fail
+are counted (``outside_guard``, expected 0; the verdict warns otherwise).
 """
 
 from __future__ import annotations
@@ -65,7 +70,7 @@ class LangevinCounters(MoveCounters):
         return super().to_json() | {"rolled_back": self.rolled_back, "outside_guard": self.outside_guard}
 
     @classmethod
-    def from_json(cls, values: dict) -> "LangevinCounters":
+    def from_json(cls, values: dict) -> LangevinCounters:
         base = MoveCounters.from_json(values)
         return cls(base.proposed, base.accepted, base.clash, base.stereo, base.recent,
                    int(values.get("rolled_back", 0)), int(values.get("outside_guard", 0)))
@@ -86,10 +91,14 @@ class LangevinSegment:
         cycle).
     name : str
         The move's key in the checkpoint's counters.
+    guard : ProposalGuard, optional
+        Checks the states segments lead to while ``count_guard`` is set (the scheduler sets it
+        in production); failures are counted in ``counters.outside_guard``.
     """
 
-    def __init__(self, evaluators: list[EnergyEvaluator], steps: int, log, name: str = "langevin"):
+    def __init__(self, evaluators: list[EnergyEvaluator], steps: int, log, name: str = "langevin", guard=None):
         self.evaluators, self.steps, self.log, self.name = list(evaluators), int(steps), log, name
+        self.guard, self.count_guard = guard, False
         self.counters = LangevinCounters()
         self.pieces = 1  # > 1 during training: intermediate frames are handed back
         self.label = "walker"  # what a walker is called in log lines ("rung" for replicas)
@@ -114,11 +123,11 @@ class LangevinSegment:
             self.counters.accepted += 1
             accepted[k] = True
             frames.extend(pieces[:-1])
+        if self.count_guard and self.guard is not None and accepted.any():
+            # A rolled-back segment leaves the previous state, already counted or passed.
+            new_states = walkers.positions_nm[np.asarray(which)[accepted]]
+            self.counters.outside_guard += int(np.asarray(self.guard(new_states).rejected).sum())
         return MoveResult(accepted, frames_nm=np.stack(frames) if frames else None)
-
-    def count_guard_failures(self, guard, positions_nm: np.ndarray) -> None:
-        """Count states among ``positions_nm`` ``(n, n_atoms, 3)`` that fail ``guard``."""
-        self.counters.outside_guard += int(np.asarray(guard(positions_nm).rejected).sum())
 
     def state_dict(self) -> dict:
         return {self.name: self.counters.to_json()}

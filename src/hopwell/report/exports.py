@@ -15,15 +15,17 @@ from rdkit import Chem
 from hopwell.analysis.summary import public
 from hopwell.atomic import atomic_write_bytes
 from hopwell.report.page import html_page
+from hopwell.report.viewer import read_structures
 from hopwell.sampling.shards import iter_pooled_chunks
 from hopwell.sampling.store import RunStore
 
 
 def write_report(run_dir: Path, summary: dict) -> Path:
-    """Write ``summary.json``, ``populations.csv`` and ``report.html`` into the run directory."""
+    """Write ``summary.json``, ``populations.csv``, the ensemble and state files, and ``report.html``
+    (which shows the state files in 3D) into the run directory."""
     run_dir = Path(run_dir)
-    write_ensemble(run_dir, summary)
-    atomic_write_bytes(run_dir / "report.html", html_page(summary).encode())
+    structures = read_structures(write_ensemble(run_dir, summary))  # the state files just written
+    atomic_write_bytes(run_dir / "report.html", html_page(summary, structures).encode())
     summary = public(summary)
     atomic_write_bytes(run_dir / "summary.json", json.dumps(summary, indent=2).encode())
     out = io.StringIO()

@@ -12,6 +12,7 @@ from hopwell.report.plots import (
     running_plot,
     torsion_plot,
 )
+from hopwell.report.viewer import structure_section
 
 
 def _acceptance_section(summary: dict) -> str:
@@ -35,11 +36,38 @@ def _torsion_section(summary: dict) -> str:
                    f"<td>{'-'.join(str(a) for a in t.atoms)}</td></tr>" for t in tags)
     return f"""<h2>State torsions</h2>
 <p><img id="molecule-drawing" alt="molecule with the state torsions lettered" src="data:image/svg+xml;base64,{svg}"></p>
-<table id="torsion-key"><tr><th>letter</th><th>bond</th><th>atoms (from 1, as in the SDF/PDB)</th></tr>{rows}</table>
+{_scroll(f'<table id="torsion-key"><tr><th>letter</th><th>bond</th><th>atoms (from 1, as in the SDF/PDB)</th></tr>{rows}</table>')}
 """
 
 
-def html_page(summary: dict) -> str:
+# Fits a 1280-pixel window and a phone: images shrink to the column, tables scroll in their box,
+# plots and the structure viewer wrap onto the next line when the window is narrow.
+_STYLE = """body{font-family:sans-serif;max-width:1200px;margin:1em auto;padding:0 12px;color:#222;
+overflow-wrap:anywhere}img{max-width:100%;height:auto}[hidden]{display:none!important}
+.scroll{overflow-x:auto;max-width:100%}table{border-collapse:collapse}
+td,th{border:1px solid #ccc;padding:4px 10px;text-align:right;overflow-wrap:normal}td{white-space:nowrap}
+td:first-child,th:first-child{text-align:left}.verdict{font-size:1.4em}
+.plots,.structures{display:flex;flex-wrap:wrap;gap:1em;align-items:flex-start}
+.plots p,figure{margin:0}.viewer{position:relative;overflow:hidden;width:min(100%,560px);height:420px;border:1px solid #ccc}
+fieldset label{display:block;margin:2px 0}.swatch{display:inline-block;width:.9em;height:.9em;margin:0 .4em}"""
+
+
+def _scroll(table: str) -> str:
+    """A table in a box that scrolls sideways on its own when it is wider than the window."""
+    return f'<div class="scroll">{table}</div>'
+
+
+def html_page(summary: dict, structures: dict | None = None) -> str:
+    """The report page: verdict and populations first, then the molecule, structures and plots.
+
+    Parameters
+    ----------
+    summary : dict
+        From :func:`hopwell.analysis.summary.analyse`.
+    structures : dict, optional
+        State index -> (format, molecule), as read by :func:`hopwell.report.viewer.read_structures`
+        from the state files the report wrote; without it the page has no structure viewer.
+    """
     verdict = summary["verdict"]
     colour = "#2e7d32" if verdict == "converged" else "#c62828"
     reasons = "".join(f"<li>{html.escape(r)}</li>" for r in summary["reasons"])
@@ -51,11 +79,17 @@ def html_page(summary: dict) -> str:
         for s in summary["states"]
     )
     acceptance = summary["flow_acceptance_production"]
+    populations = f"""<table id="populations"><tr><th>state</th><th>population (%)</th><th>95% interval (%)</th>
+<th>dG (kJ/mol) vs {html.escape(summary['dG_reference'])}</th><th>dG 95% interval</th></tr>{rows}</table>"""
+    walker_rows = "".join(f"<tr><td>{w}</td>" + "".join(f"<td>{100 * p:.1f}</td>" for p in row) + f"<td>{t}</td></tr>"
+                          for w, (row, t) in enumerate(zip(summary["per_walker_populations"],
+                                                           summary["transitions_per_walker"])))
+    heads = "".join(f"<th>{html.escape(s['name'])} (%)</th>" for s in summary["states"])
+    walkers = f'<table id="walkers"><tr><th>walker</th>{heads}<th>transitions</th></tr>\n{walker_rows}\n</table>'
     return f"""<!DOCTYPE html>
-<html lang="en"><head><meta charset="utf-8"><title>hopwell report</title>
-<style>body{{font-family:sans-serif;max-width:900px;margin:2em auto;color:#222}}
-table{{border-collapse:collapse}}td,th{{border:1px solid #ccc;padding:4px 10px;text-align:right}}
-td:first-child,th:first-child{{text-align:left}}.verdict{{color:{colour};font-size:1.4em}}</style>
+<html lang="en"><head><meta charset="utf-8"><meta name="viewport" content="width=device-width, initial-scale=1">
+<title>hopwell report</title>
+<style>{_STYLE}.verdict{{color:{colour}}}</style>
 </head><body>
 <h1>Conformer populations</h1>
 <p class="verdict" id="verdict">Verdict: {html.escape(verdict)}</p>
@@ -65,20 +99,18 @@ walker(s); effective samples {summary['effective_samples']:.0f}; {summary['trans
 flow acceptance {"-" if acceptance is None else f"{100 * acceptance:.1f}%"}; over the whole run:
 {", ".join(f"{k.replace('_', ' ')} {100 * v:.1f}%" for k, v in summary["move_acceptance"].items()
            if isinstance(v, float)) or "-"}.</p>
-<table id="populations"><tr><th>state</th><th>population (%)</th><th>95% interval (%)</th>
-<th>dG (kJ/mol) vs {html.escape(summary['dG_reference'])}</th><th>dG 95% interval</th></tr>{rows}</table>
+{_scroll(populations)}
 {"".join(f"<p>{html.escape(k)}: {v['mean']:.2f} (95% {v['ci95_low']:.2f} - {v['ci95_high']:.2f})</p>"
          for k, v in summary.get("observables", {}).items())}
-{_torsion_section(summary)}<h2>Walkers</h2>
-<table id="walkers"><tr><th>walker</th>{"".join(f"<th>{html.escape(s['name'])} (%)</th>" for s in summary["states"])}<th>transitions</th></tr>
-{"".join(f"<tr><td>{w}</td>" + "".join(f"<td>{100 * p:.1f}</td>" for p in row) + f"<td>{t}</td></tr>"
-         for w, (row, t) in enumerate(zip(summary["per_walker_populations"], summary["transitions_per_walker"])))}
-</table>
+{_torsion_section(summary)}{structure_section(structures or {}, summary["states"])}<h2>Walkers</h2>
+{_scroll(walkers)}
+<h2>Populations over the run</h2>
+<div class="plots">
 <p><img id="population-plot" alt="populations" src="data:image/png;base64,{population_plot(summary)}"></p>
+<p><img id="running-plot" alt="running populations" src="data:image/png;base64,{running_plot(summary)}"></p>
+</div>
 <h2>Free energy along the state torsions</h2>
 <p><img id="torsion-plot" alt="torsion free energies" src="data:image/png;base64,{torsion_plot(summary)}"></p>
-<h2>Running estimates</h2>
-<p><img id="running-plot" alt="running populations" src="data:image/png;base64,{running_plot(summary)}"></p>
 {_acceptance_section(summary)}<p>Populations are properties of the force field and solvent model; an unconverged run
 misleads; results inform research and do not replace experiment.</p>
 </body></html>

@@ -120,7 +120,7 @@ class ReplicaSampler(Sampler):
         self.local.apply(self.walkers, every, self.streams)
         self.swap.apply(self.walkers, neighbour_pairs(self.n_walkers, self.cycle % 2), self.streams)
         states = {k: [] for k in STATE_FIELDS}
-        self._record_state(states, 0, MOVE_LANGEVIN, production=True)
+        self._record_state(states, self._snapshot(), 0, MOVE_LANGEVIN, production=True)
         self.production_samples += 1
         self._pending.append((states, {}))
         self.cycle += 1

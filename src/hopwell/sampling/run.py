@@ -12,6 +12,7 @@ import openmm
 from openmm import app
 from rdkit import Chem
 
+from hopwell.coords.guards import ProposalGuard, refuse_failing_seeds
 from hopwell.errors import InputError
 from hopwell.sampling.replica import ReplicaSampler
 from hopwell.sampling.sampler import Budget, Sampler, SamplerSettings
@@ -91,6 +92,8 @@ def start_run(spec: str, out_dir: Path, build_options: BuildOptions, settings: S
     """
     if molsys is None:
         molsys = build(spec, build_options)
+    # Refused here, before the run directory exists (the sampler checks again for other callers).
+    refuse_failing_seeds(ProposalGuard.from_mol(molsys.mol, molsys.seeds_nm[0]), molsys.seeds_nm)
     walkers = _walkers(settings, n_walkers, len(molsys.seeds_nm))
     config = {
         "format": FORMAT_VERSION,

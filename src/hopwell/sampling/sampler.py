@@ -31,12 +31,17 @@ import torch
 from rdkit import Chem
 
 from hopwell.atomic import atomic_write_bytes
-from hopwell.coords.guards import ProposalGuard
+from hopwell.coords.guards import ProposalGuard, refuse_failing_seeds
 from hopwell.coords.internal import build_zmatrix, cartesian_to_internal
-from hopwell.errors import InputError
 from hopwell.flow.training import FlowSettings, FlowTrainer
 from hopwell.moves.base import MoveCounters, RandomStreams, Walkers
-from hopwell.moves.darts import DartSettings, SeedDarts, build_darts
+from hopwell.moves.darts import (
+    DartSettings,
+    SeedDarts,
+    build_darts,
+    rows_placing,
+    rows_within,
+)
 from hopwell.moves.exchange import LadderSettings
 from hopwell.moves.flow_block import FlowBlock, FlowBlockSettings
 from hopwell.moves.langevin import LangevinSegment, LangevinSettings
@@ -44,6 +49,7 @@ from hopwell.moves.one_torsion import OneTorsion, OneTorsionSettings
 from hopwell.sampling.store import MOVE_FLOW, MOVE_LANGEVIN, STATE_FIELDS, RunStore
 from hopwell.systems.builder import rotatable_bonds
 from hopwell.systems.energy import EnergyEvaluator
+from hopwell.systems.rings import saturated_six_rings
 
 
 @dataclass
@@ -120,6 +126,10 @@ class Sampler:
             mol.GetNumAtoms(), [(b.GetBeginAtomIdx(), b.GetEndAtomIdx()) for b in mol.GetBonds()],
             heavy=[a.GetAtomicNum() > 1 for a in mol.GetAtoms()], rotatable=rotatable_bonds(mol))
         self.guard = ProposalGuard.from_mol(mol, seeds_nm[0])
+        # Saturated six-rings and their heavy substituents: the darts' pucker coordinates.
+        self.ring_atoms = [ring.atoms for ring in saturated_six_rings(mol)]
+        self.pucker_atoms = sorted({a for ring in saturated_six_rings(mol)
+                                    for a in ring.atoms + tuple(x for _, x in ring.substituents)})
         self.trainer = FlowTrainer(self.zmat, mol, seeds_nm, settings, settings.seed)
         self.dart_centres_nm = None  # the minimized seeds, kept in the checkpoint
         if settings.method == "flow" and settings.darts_per_cycle > 0:
@@ -129,10 +139,7 @@ class Sampler:
         self.walkers = Walkers(positions, self.evaluator.energies_kj(positions))
         if not np.all(np.isfinite(self.walkers.energies_kj)):
             raise ValueError("a seed structure has a non-finite energy")
-        failed = np.flatnonzero(np.asarray(self.guard(positions).rejected))
-        if len(failed):  # every proposal from such a state would be rejected: it would sample by Langevin alone
-            raise InputError(f"seed structure {int(failed[0]) % len(seeds_nm) + 1} fails the clash or stereo"
-                             " check (overlapping atoms, or stereochemistry unlike the first seed's)")
+        refuse_failing_seeds(self.guard, seeds_nm)  # walkers start from the seeds in turn
         self._build_moves()
         self.cycle, self.training_end_cycle, self.elapsed_s = 0, -1, 0.0
         self.next_chunk, self.production_samples = 0, 0
@@ -153,10 +160,12 @@ class Sampler:
     def _build_moves(self) -> None:
         """The moves over the current evaluator and dart centres."""
         s = self.settings
-        self.local = LangevinSegment(self._segment_evaluators(), s.langevin_steps, self._log)
+        self.local = LangevinSegment(self._segment_evaluators(), s.langevin_steps, self._log, guard=self.guard)
         self.flow_move = FlowBlock(self.trainer, self.guard, self.evaluator, s.proposals_per_cycle)
         self.one_torsion = OneTorsion(self.trainer, self.guard, self.evaluator, s.single_moves_per_cycle)
-        darts = (build_darts(self.zmat, self.trainer.all_moving, self.dart_centres_nm)
+        darts = (build_darts(self.zmat, self.trainer.all_moving, self.dart_centres_nm,
+                             rows_placing(self.zmat, self.pucker_atoms),
+                             np.concatenate([rows_within(self.zmat, r) for r in self.ring_atoms] + [[]]).astype(int))
                  if self.dart_centres_nm is not None else None)
         self.seed_darts = SeedDarts(darts, self.zmat, self.guard, self.evaluator, s.darts_per_cycle) if darts else None
         # Production walker states per dart region (index 0: outside every region).
@@ -199,6 +208,8 @@ class Sampler:
     def _set_phase(self) -> None:
         self.flow_move.production = self.production
         self.local.pieces = 1 if self.production else self.settings.buffer_frames_per_segment
+        # Production Langevin states failing the guard: only the Monte Carlo moves ("flow") use it.
+        self.local.count_guard = self.production and self.settings.method == "flow"
 
     def _maybe_end_training(self) -> None:
         s = self.settings
@@ -221,33 +232,39 @@ class Sampler:
         return np.concatenate([self.basin_counts[1:], self.basin_counts[:1]]) / total
 
     def run_cycle(self) -> None:
-        """One cycle over all walkers; queues the records for the next chunk."""
+        """One cycle over all walkers; queues the records for the next chunk.
+
+        Each move is applied to all walkers at once, so that a move can batch its work over
+        them (the flow block's networks, the guards, the energy loops). Every walker still sees
+        the moves in the same order (local segment, then the others); the walkers are
+        independent, so the order across walkers changes nothing.
+        """
         production = self.production
         states = {k: [] for k in STATE_FIELDS}
         proposals = []
         local, *others = self.moves
-        for walker in range(self.n_walkers):
-            which = np.array([walker])
-            result = local.apply(self.walkers, which, self.streams)
-            if result.frames_nm is not None:
-                self.trainer.add(result.frames_nm)
-            self._record_state(states, walker, MOVE_LANGEVIN, production)
-            if not others:
-                continue
-            moved = False
-            for move in others:
-                result = move.apply(self.walkers, which, self.streams)
-                if move is self.flow_move:
-                    moved = bool(result.accepted[0])
-                    if result.proposals is not None:
-                        proposals.append(result.proposals | {"cycle": np.full(len(result.proposals["walker"]),
-                                                                              self.cycle, np.int64)})
-            self._record_state(states, walker, MOVE_FLOW, production, accepted=moved)
+        which = np.arange(self.n_walkers)
+        result = local.apply(self.walkers, which, self.streams)
+        if result.frames_nm is not None:
+            self.trainer.add(result.frames_nm)
+        after_local = self._snapshot()
+        moved = np.zeros(self.n_walkers, dtype=bool)
+        for move in others:
+            result = move.apply(self.walkers, which, self.streams)
+            if move is self.flow_move:
+                moved = np.asarray(result.accepted, dtype=bool)
+                if result.proposals is not None:
+                    proposals.append(result.proposals | {"cycle": np.full(len(result.proposals["walker"]),
+                                                                          self.cycle, np.int64)})
+        after_all = self._snapshot()
+        for walker in which:  # records in walker order, each walker's local state first
+            self._record_state(states, after_local, walker, MOVE_LANGEVIN, production)
+            if others:
+                self._record_state(states, after_all, walker, MOVE_FLOW, production, accepted=bool(moved[walker]))
         if not production:
             self.trainer.add(np.stack(states["positions_nm"]))
         else:
             self.production_samples += len(states["walker"])
-            self.local.count_guard_failures(self.guard, self.walkers.positions_nm)
             if self.seed_darts is not None:  # running occupancy of the seeds' basins, for progress
                 with torch.no_grad():
                     ic = cartesian_to_internal(self.zmat, torch.as_tensor(self.walkers.positions_nm))
@@ -258,15 +275,21 @@ class Sampler:
         if not production and self.cycle % self.settings.fit_every == 0:
             self.trainer.fit(self.streams.numpy, self.streams.torch, self._log)
 
-    def _record_state(self, states, walker, move, production, accepted=True) -> None:
-        states["positions_nm"].append(self.walkers.positions_nm[walker].astype(np.float32))
-        states["energy_kj"].append(self.walkers.energies_kj[walker])
-        states["walker"].append(walker)
+    def _snapshot(self) -> tuple[np.ndarray, np.ndarray, float]:
+        """The walkers' positions and energies now, and the cycle's elapsed seconds."""
+        return (self.walkers.positions_nm.copy(), self.walkers.energies_kj.copy(),
+                self.elapsed_s + time.perf_counter() - self._cycle_start)
+
+    def _record_state(self, states, snapshot, walker, move, production, accepted=True) -> None:
+        positions_nm, energies_kj, time_s = snapshot
+        states["positions_nm"].append(positions_nm[walker].astype(np.float32))
+        states["energy_kj"].append(energies_kj[walker])
+        states["walker"].append(int(walker))
         states["cycle"].append(self.cycle)
         states["move"].append(move)
         states["accepted"].append(accepted)
         states["production"].append(production)
-        states["time_s"].append(self.elapsed_s + time.perf_counter() - self._cycle_start)
+        states["time_s"].append(time_s)
 
     # -- persistence ----------------------------------------------------------------------
     def _counters_json(self) -> dict:

@@ -9,10 +9,11 @@ import numpy as np
 import openmm
 from openmm import app
 from rdkit import Chem
-from rdkit.Chem import rdMolDescriptors
+from rdkit.Chem import AllChem, rdMolDescriptors, rdMolTransforms
 
 from hopwell.errors import InputError
 from hopwell.systems import amber, backbone, mmff, seeds
+from hopwell.systems import rings as rg
 from hopwell.systems.inputs import ParsedInput, read_input
 from hopwell.systems.solvent import add_obc2
 
@@ -257,6 +258,9 @@ def _build_mmff(parsed: ParsedInput, forcefield: str, options: BuildOptions) -> 
     else:
         seed_mol = mol
     distinct = seeds.deduplicate(seed_mol)
+    if mol.GetNumConformers() == 0:  # ETKDG seeds: both chairs of every saturated six-ring
+        distinct, note = ring_seeds(seed_mol, distinct, variant)
+        notes += [note] if note else []
     if distinct.GetNumConformers() < seed_mol.GetNumConformers():
         notes.append(
             f"{seed_mol.GetNumConformers() - distinct.GetNumConformers()} structures within"
@@ -275,6 +279,115 @@ def _build_mmff(parsed: ParsedInput, forcefield: str, options: BuildOptions) -> 
         source=parsed.source,
         notes=notes,
     )
+
+
+# Twist-boat seeds more than this above the lowest seed are dropped: with the twist-boat's extra
+# entropy (about 0.9 kcal/mol at 298 K for cyclohexane, from memory) that bounds its population
+# near exp(-3.1 / 0.593) = 0.5%, the state model's floor. Methylcyclohexane's is 6.1 kcal/mol
+# above the equatorial chair in MMFF94 (systems/ligands/README.md).
+TWIST_BOAT_MARGIN_KCAL = 4.0
+
+
+def _ring_code_rows(mol: Chem.Mol, rings, conf_ids) -> list[tuple]:
+    """Ring state codes (:func:`hopwell.systems.rings.signature`) of the given conformers."""
+    torsions = [t for ring in rings for t in ring.torsions]
+    d = np.array([[rdMolTransforms.GetDihedralRad(mol.GetConformer(c), *t) for t in torsions]
+                  for c in conf_ids]).reshape(len(conf_ids), len(torsions))
+    return rg.signature(rings, d)
+
+
+def _flipped_chair(mol: Chem.Mol, conf_id: int, ring, variant: str) -> Chem.Conformer | None:
+    """The other chair of ``ring``: MMFF-minimized with its six ring torsions restrained to minus
+    their values, then freely; None if any atom's handedness changed (four-neighbour atoms)."""
+    work = Chem.Mol(mol)
+    conf = work.GetConformer(conf_id)
+    props = AllChem.MMFFGetMoleculeProperties(work, mmffVariant=variant)
+    field = AllChem.MMFFGetMoleculeForceField(work, props, confId=conf_id)
+    for t in ring.torsions[:6]:
+        target = -rdMolTransforms.GetDihedralDeg(conf, *t)
+        field.MMFFAddTorsionConstraint(*t, False, target - 5.0, target + 5.0, 100.0)
+    field.Minimize(maxIts=2000)
+    AllChem.MMFFGetMoleculeForceField(work, props, confId=conf_id).Minimize(maxIts=2000)
+
+    def handedness(c):
+        x = c.GetPositions()
+        return [np.sign(np.linalg.det(x[[n.GetIdx() for n in a.GetNeighbors()][:3]] - x[a.GetIdx()]))
+                for a in mol.GetAtoms() if a.GetDegree() == 4]
+    return Chem.Conformer(conf) if handedness(conf) == handedness(mol.GetConformer(conf_id)) else None
+
+
+def ring_seeds(seed_mol: Chem.Mol, distinct: Chem.Mol, variant: str) -> tuple[Chem.Mol, str | None]:
+    """Seeds that hold both chairs of every saturated six-ring, twist-boats dropped when high.
+
+    The heavy-atom RMSD merge can fold an axial chair into the equatorial one (in a large
+    molecule a ring flip moves few atoms), and the embeddings may not contain both chairs. So:
+    every ring state (:mod:`hopwell.systems.rings`) of the embeddings that the merge lost is
+    put back (its lowest structure); each ring of the lowest seed is flipped to its other chair
+    (:func:`_flipped_chair`) where no seed has that state; and seeds with a twist-boat more than
+    :data:`TWIST_BOAT_MARGIN_KCAL` above the lowest seed are dropped, since walkers started there
+    and darts aimed there would spend the run on a state of negligible weight.
+
+    Parameters
+    ----------
+    seed_mol : rdkit.Chem.Mol
+        The minimized embeddings, lowest energy first.
+    distinct : rdkit.Chem.Mol
+        Those kept by :func:`hopwell.systems.seeds.deduplicate`.
+    variant : {"MMFF94", "MMFF94s"}
+
+    Returns
+    -------
+    rdkit.Chem.Mol, str or None
+        The seeds, and a note for the build summary (None if nothing changed).
+    """
+    rings = rg.saturated_six_rings(seed_mol)
+    if not rings:
+        return distinct, None
+    props = AllChem.MMFFGetMoleculeProperties(seed_mol, mmffVariant=variant)
+
+    def energy(m, c):
+        return AllChem.MMFFGetMoleculeForceField(m, props, confId=c).CalcEnergy()
+
+    confs = [Chem.Conformer(c) for c in distinct.GetConformers()]
+    codes = _ring_code_rows(distinct, rings, [c.GetId() for c in distinct.GetConformers()])
+    all_ids = [c.GetId() for c in seed_mol.GetConformers()]
+    added, lowest = 0, energy(seed_mol, all_ids[0])
+    for conf_id, code in zip(all_ids, _ring_code_rows(seed_mol, rings, all_ids)):
+        high = rg.TWIST_BOAT in code and energy(seed_mol, conf_id) - lowest > TWIST_BOAT_MARGIN_KCAL
+        if code not in codes and not high:
+            confs.append(Chem.Conformer(seed_mol.GetConformer(conf_id)))
+            codes.append(code)
+            added += 1
+    for r, ring in enumerate(rings):
+        if codes[0][r] == rg.TWIST_BOAT:
+            continue
+        flipped = _flipped_chair(seed_mol, all_ids[0], ring, variant)
+        if flipped is None:
+            continue
+        probe = Chem.Mol(seed_mol)
+        probe.RemoveAllConformers()
+        code = _ring_code_rows(probe, rings, [probe.AddConformer(flipped, assignId=True)])[0]
+        if code not in codes and rg.TWIST_BOAT not in code:
+            confs.append(flipped)
+            codes.append(code)
+            added += 1
+    out = Chem.Mol(seed_mol)
+    out.RemoveAllConformers()
+    for conf in confs:
+        out.AddConformer(conf, assignId=True)
+    ids = [c.GetId() for c in out.GetConformers()]
+    keep = [c for c, code in zip(ids, codes)
+            if rg.TWIST_BOAT not in code or energy(out, c) - lowest <= TWIST_BOAT_MARGIN_KCAL]
+    dropped = len(ids) - len(keep)
+    final = Chem.Mol(out)
+    final.RemoveAllConformers()
+    for c in keep:
+        final.AddConformer(Chem.Conformer(out.GetConformer(c)), assignId=True)
+    if not added and not dropped:
+        return final, None
+    return final, (f"ring puckers: {added} seed(s) added for ring states the merge or the embeddings"
+                   f" lacked, {dropped} twist-boat seed(s) dropped (over {TWIST_BOAT_MARGIN_KCAL:g}"
+                   " kcal/mol above the lowest seed)")
 
 
 def _build_peptide(parsed: ParsedInput, options: BuildOptions) -> MolecularSystem:
