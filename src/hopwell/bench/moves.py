@@ -5,12 +5,19 @@ full run (training for 30% of the budget, then production) into a temporary dire
 gives acceptance by move type in production, proposals per second, effective samples per second
 (:func:`hopwell.analysis.summary.analyse`) and the phi > 0 population where the molecule is a dipeptide.
 Variants run one after another, so their ratios share the machine's load.
+
+``--against REV`` checks a change for behaviour: each variant runs on this tree and then on git
+revision REV (checked out in a temporary worktree, run in a subprocess with that tree's
+``src`` first on the path), alternating, and the table has a row ``NAME@REV`` under each row.
 """
 
 from __future__ import annotations
 
 import argparse
 import json
+import os
+import subprocess
+import sys
 import tempfile
 from dataclasses import replace
 from pathlib import Path
@@ -56,18 +63,44 @@ def run_variant(spec: str, out: Path, overrides: dict, seconds: float) -> dict:
     return row
 
 
+REPOSITORY = Path(__file__).resolve().parents[3]
+
+
+def run_variant_at(revision_tree: Path, spec: str, name: str, minutes: float, out_json: Path) -> dict:
+    """The same variant row from another checkout of hopwell, run in a subprocess."""
+    env = os.environ | {"PYTHONPATH": str(revision_tree / "src")}
+    subprocess.run([sys.executable, "-m", "hopwell.bench.moves", spec, "--minutes", str(minutes),
+                    "--variants", name, "--json-out", str(out_json)], env=env, check=True,
+                   stdout=subprocess.DEVNULL)
+    return json.loads(out_json.read_text())[name]
+
+
 def main(argv=None) -> None:
     parser = argparse.ArgumentParser(description=__doc__)
     parser.add_argument("input")
     parser.add_argument("--minutes", type=float, default=5.0, help="budget per variant")
     parser.add_argument("--variants", default=",".join(VARIANTS), help="comma-separated names")
     parser.add_argument("--json-out", type=Path, default=None)
+    parser.add_argument("--against", metavar="REV", default=None,
+                        help="also run each variant on this git revision, for an old/new table")
     args = parser.parse_args(argv)
     torch.set_num_threads(1)
     rows = {}
     with tempfile.TemporaryDirectory() as tmp:
-        for k, name in enumerate(args.variants.split(",")):
-            rows[name] = run_variant(args.input, Path(tmp) / f"v{k}", VARIANTS[name], 60.0 * args.minutes)
+        other = Path(tmp) / "against"
+        if args.against:
+            subprocess.run(["git", "-C", str(REPOSITORY), "worktree", "add", "-q", "--detach", str(other),
+                            args.against], check=True)
+        try:
+            for k, name in enumerate(args.variants.split(",")):
+                rows[name] = run_variant(args.input, Path(tmp) / f"v{k}", VARIANTS[name], 60.0 * args.minutes)
+                if args.against:
+                    rows[f"{name}@{args.against}"] = run_variant_at(other, args.input, name, args.minutes,
+                                                                    Path(tmp) / f"v{k}.json")
+        finally:
+            if args.against:
+                subprocess.run(["git", "-C", str(REPOSITORY), "worktree", "remove", "--force", str(other)],
+                               check=False)
     print_table(rows, "variant", 14, 14, float_format=".3f")
     if args.json_out:
         args.json_out.write_text(json.dumps(rows, indent=2) + "\n")

@@ -19,6 +19,7 @@ intermediate frames for the flow fit) comes back in the :class:`MoveResult`.
 
 from __future__ import annotations
 
+import json
 from collections import deque
 from dataclasses import asdict, dataclass, field
 from typing import Protocol
@@ -96,6 +97,16 @@ class RandomStreams:
     @classmethod
     def seeded(cls, seed: int) -> "RandomStreams":
         return cls(np.random.default_rng(seed), torch.Generator().manual_seed(seed))
+
+    def state_arrays(self) -> dict:
+        """Both streams' states as checkpoint arrays (``rng``: numpy's as JSON, ``torch_rng``)."""
+        return {"rng": np.str_(json.dumps(self.numpy.bit_generator.state)),
+                "torch_rng": self.torch.get_state().numpy()}
+
+    def load_state_arrays(self, state: dict) -> None:
+        """Continue both streams from :meth:`state_arrays` output."""
+        self.numpy.bit_generator.state = json.loads(str(state["rng"]))
+        self.torch.set_state(torch.from_numpy(np.array(state["torch_rng"])))
 
 
 @dataclass

@@ -35,7 +35,7 @@ from rdkit import Chem
 
 from hopwell.moves.exchange import ReplicaSwap, neighbour_pairs
 from hopwell.sampling.sampler import Sampler, SamplerSettings
-from hopwell.sampling.store import MOVE_LANGEVIN, STATE_FIELDS, RunStore
+from hopwell.sampling.store import MOVE_LANGEVIN, RunStore
 from hopwell.systems.energy import kT_kj
 
 
@@ -119,10 +119,8 @@ class ReplicaSampler(Sampler):
         every = np.arange(self.n_walkers)
         self.local.apply(self.walkers, every, self.streams)
         self.swap.apply(self.walkers, neighbour_pairs(self.n_walkers, self.cycle % 2), self.streams)
-        states = {k: [] for k in STATE_FIELDS}
-        self._record_state(states, self._snapshot(), 0, MOVE_LANGEVIN, production=True)
+        self.queue.add_state(self.snapshot(), 0, self.cycle, MOVE_LANGEVIN, production=True)
         self.production_samples += 1
-        self._pending.append((states, {}))
         self.cycle += 1
 
     def flush(self) -> None:
@@ -130,7 +128,7 @@ class ReplicaSampler(Sampler):
 
         The line is written when the flush wrote a chunk, so once per checkpointed stretch.
         """
-        wrote_chunk = bool(self._pending)
+        wrote_chunk = bool(self.queue)
         super().flush()
         if wrote_chunk:
             self.store.log(f"cycle {self.cycle}: exchange acceptance {self.swap.counters.describe()}")

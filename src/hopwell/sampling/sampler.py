@@ -24,7 +24,6 @@ import json
 import signal
 import threading
 import time
-from dataclasses import dataclass
 
 import numpy as np
 import torch
@@ -33,72 +32,18 @@ from rdkit import Chem
 from hopwell.atomic import atomic_write_bytes
 from hopwell.coords.guards import ProposalGuard, refuse_failing_seeds
 from hopwell.coords.internal import build_zmatrix, cartesian_to_internal
-from hopwell.flow.training import FlowSettings, FlowTrainer
+from hopwell.flow.training import FlowTrainer
 from hopwell.moves.base import MoveCounters, RandomStreams, Walkers
-from hopwell.moves.darts import (
-    DartSettings,
-    SeedDarts,
-    build_darts,
-    rows_placing,
-    rows_within,
-)
-from hopwell.moves.exchange import LadderSettings
-from hopwell.moves.flow_block import FlowBlock, FlowBlockSettings
-from hopwell.moves.langevin import LangevinSegment, LangevinSettings
-from hopwell.moves.one_torsion import OneTorsion, OneTorsionSettings
-from hopwell.sampling.store import MOVE_FLOW, MOVE_LANGEVIN, STATE_FIELDS, RunStore
+from hopwell.moves.darts import SeedDarts, build_darts, rows_placing, rows_within
+from hopwell.moves.flow_block import FlowBlock
+from hopwell.moves.langevin import LangevinSegment
+from hopwell.moves.one_torsion import OneTorsion
+from hopwell.sampling.records import ChunkQueue, Snapshot
+from hopwell.sampling.settings import Budget, SamplerSettings
+from hopwell.sampling.store import MOVE_FLOW, MOVE_LANGEVIN, RunStore
 from hopwell.systems.builder import rotatable_bonds
 from hopwell.systems.energy import EnergyEvaluator
 from hopwell.systems.rings import saturated_six_rings
-
-
-@dataclass
-class ScheduleSettings:
-    """Settings of the run as a whole.
-
-    Attributes
-    ----------
-    temperature_K : float
-    method : {"flow", "md", "remd"}
-        "flow": local segments plus flow, one-torsion and dart moves; "md": the local segments
-        alone (the plain-MD baseline, from the same seeds, into the same kind of run directory);
-        "remd": temperature replica exchange (:mod:`hopwell.sampling.replica`).
-    cycles_per_chunk : int
-        Cycles between chunk writes and checkpoints.
-    seed : int
-    """
-
-    temperature_K: float = 300.0
-    method: str = "flow"
-    cycles_per_chunk: int = 10
-    seed: int = 2024
-
-
-@dataclass
-class SamplerSettings(FlowSettings, DartSettings, OneTorsionSettings, FlowBlockSettings, LadderSettings,
-                      LangevinSettings, ScheduleSettings):
-    """Every setting of a run, flat as written to ``run.toml``; each group is documented with the
-    part it belongs to: :class:`ScheduleSettings`, :class:`~hopwell.moves.langevin.LangevinSettings`,
-    :class:`~hopwell.moves.exchange.LadderSettings`, :class:`~hopwell.moves.flow_block.FlowBlockSettings`,
-    :class:`~hopwell.moves.one_torsion.OneTorsionSettings`, :class:`~hopwell.moves.darts.DartSettings`
-    and :class:`~hopwell.flow.training.FlowSettings`."""
-
-
-@dataclass
-class Budget:
-    """When to stop: production samples recorded, or sampling seconds spent (or both).
-
-    Seconds count over the whole run, resumes included (the checkpoint keeps the elapsed time).
-    """
-
-    samples: int | None = None
-    seconds: float | None = None
-    training_only: bool = False  # stop when training ends (sharded runs: production is in shards)
-
-    def done(self, production_samples: int, elapsed_s: float) -> bool:
-        if self.samples is not None and production_samples >= self.samples:
-            return True
-        return self.seconds is not None and elapsed_s >= self.seconds
 
 
 class Sampler:
@@ -144,7 +89,7 @@ class Sampler:
         self.cycle, self.training_end_cycle, self.elapsed_s = 0, -1, 0.0
         self.next_chunk, self.production_samples = 0, 0
         self._stop = False
-        self._pending: list[tuple[dict, dict]] = []
+        self.queue = ChunkQueue()
         self._cycle_start = time.perf_counter()
 
     def _evaluator(self, temperature_K: float, platform: str | None) -> EnergyEvaluator:
@@ -240,56 +185,45 @@ class Sampler:
         independent, so the order across walkers changes nothing.
         """
         production = self.production
-        states = {k: [] for k in STATE_FIELDS}
-        proposals = []
         local, *others = self.moves
         which = np.arange(self.n_walkers)
         result = local.apply(self.walkers, which, self.streams)
         if result.frames_nm is not None:
             self.trainer.add(result.frames_nm)
-        after_local = self._snapshot()
+        after_local = self.snapshot()
         moved = np.zeros(self.n_walkers, dtype=bool)
         for move in others:
             result = move.apply(self.walkers, which, self.streams)
             if move is self.flow_move:
                 moved = np.asarray(result.accepted, dtype=bool)
                 if result.proposals is not None:
-                    proposals.append(result.proposals | {"cycle": np.full(len(result.proposals["walker"]),
-                                                                          self.cycle, np.int64)})
-        after_all = self._snapshot()
+                    self.queue.add_proposals(result.proposals | {
+                        "cycle": np.full(len(result.proposals["walker"]), self.cycle, np.int64)})
+        after_all = self.snapshot()
         for walker in which:  # records in walker order, each walker's local state first
-            self._record_state(states, after_local, walker, MOVE_LANGEVIN, production)
+            self.queue.add_state(after_local, walker, self.cycle, MOVE_LANGEVIN, production)
             if others:
-                self._record_state(states, after_all, walker, MOVE_FLOW, production, accepted=bool(moved[walker]))
-        if not production:
-            self.trainer.add(np.stack(states["positions_nm"]))
+                self.queue.add_state(after_all, walker, self.cycle, MOVE_FLOW, production,
+                                     accepted=bool(moved[walker]))
+        recorded = [after_local] + ([after_all] if others else [])
+        if not production:  # the training buffer gets the recorded states, in the same order
+            self.trainer.add(np.stack([s.positions_nm for s in recorded], axis=1)
+                             .reshape(-1, *self.walkers.positions_nm.shape[1:]).astype(np.float32))
         else:
-            self.production_samples += len(states["walker"])
+            self.production_samples += self.n_walkers * len(recorded)
             if self.seed_darts is not None:  # running occupancy of the seeds' basins, for progress
                 with torch.no_grad():
                     ic = cartesian_to_internal(self.zmat, torch.as_tensor(self.walkers.positions_nm))
                 self.basin_counts += np.bincount(self.seed_darts.darts.region(ic.torsions_rad.numpy()) + 1,
                                                  minlength=len(self.basin_counts))
-        self._pending.append((states, _concat(proposals)))
         self.cycle += 1
         if not production and self.cycle % self.settings.fit_every == 0:
             self.trainer.fit(self.streams.numpy, self.streams.torch, self._log)
 
-    def _snapshot(self) -> tuple[np.ndarray, np.ndarray, float]:
-        """The walkers' positions and energies now, and the cycle's elapsed seconds."""
-        return (self.walkers.positions_nm.copy(), self.walkers.energies_kj.copy(),
-                self.elapsed_s + time.perf_counter() - self._cycle_start)
-
-    def _record_state(self, states, snapshot, walker, move, production, accepted=True) -> None:
-        positions_nm, energies_kj, time_s = snapshot
-        states["positions_nm"].append(positions_nm[walker].astype(np.float32))
-        states["energy_kj"].append(energies_kj[walker])
-        states["walker"].append(int(walker))
-        states["cycle"].append(self.cycle)
-        states["move"].append(move)
-        states["accepted"].append(accepted)
-        states["production"].append(production)
-        states["time_s"].append(time_s)
+    def snapshot(self) -> Snapshot:
+        """The walkers' positions and energies now, and the run's elapsed seconds."""
+        return Snapshot(self.walkers.positions_nm.copy(), self.walkers.energies_kj.copy(),
+                        self.elapsed_s + time.perf_counter() - self._cycle_start)
 
     # -- persistence ----------------------------------------------------------------------
     def _counters_json(self) -> dict:
@@ -300,11 +234,9 @@ class Sampler:
 
     def flush(self) -> None:
         """Write queued cycles as one chunk, then the checkpoint that counts it."""
-        if self._pending:
-            states = {k: np.concatenate([np.asarray(s[k]) for s, _ in self._pending]) for k in self._pending[0][0]}
-            self.store.write_chunk(self.next_chunk, states, _concat([p for _, p in self._pending if p]))
+        if self.queue:
+            self.store.write_chunk(self.next_chunk, *self.queue.take())
             self.next_chunk += 1
-            self._pending = []
         flow_path = self.store.flow_path(self.cycle)
         # Atomic like every other file: a flush at the checkpoint's own cycle (the run's last
         # one, or a resume from checkpoint zero) rewrites the flow file state.npz names.
@@ -317,8 +249,7 @@ class Sampler:
             "production_samples": np.int64(self.production_samples),
             "positions_nm": self.walkers.positions_nm, "energies_kj": self.walkers.energies_kj,
             "flow_file": np.str_(flow_path.name),
-            "rng": np.str_(json.dumps(self.streams.numpy.bit_generator.state)),
-            "torch_rng": self.streams.torch.get_state().numpy(),
+            **self.streams.state_arrays(),
             "stats": np.str_(json.dumps(self._counters_json())),
             **({} if self.dart_centres_nm is None else {"dart_centres_nm": self.dart_centres_nm,
                                                         "basin_counts": self.basin_counts}),
@@ -335,8 +266,7 @@ class Sampler:
             self.store.log(f"resume: removed {removed} chunk(s) written after the last checkpoint")
         self.walkers = Walkers(np.array(state["positions_nm"]), np.array(state["energies_kj"]))
         self.trainer.load_state_dict(torch.load(self.store.path / str(state["flow_file"]), weights_only=True))
-        self.streams.numpy.bit_generator.state = json.loads(str(state["rng"]))
-        self.streams.torch.set_state(torch.from_numpy(np.array(state["torch_rng"])))
+        self.streams.load_state_arrays(state)
         # Fresh noise: the integrator's seed is fixed when its context is made, so a resumed run
         # would otherwise replay the Langevin noise of the run's start.
         self.evaluator = self._evaluator(self.settings.temperature_K, self.evaluator.platform.getName())
@@ -396,8 +326,3 @@ class Sampler:
             for sig, handler in previous.items():
                 signal.signal(sig, handler)
 
-
-def _concat(blocks: list[dict]) -> dict:
-    if not blocks:
-        return {}
-    return {k: np.concatenate([b[k] for b in blocks]) for k in blocks[0]}
