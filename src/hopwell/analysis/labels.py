@@ -6,10 +6,14 @@ drawing), a short name of the bond it turns by element and kind (``C(=O)-N amide
 
 Wells get the trade's names where it has them, with the numeric centre kept beside:
 
-* amide-like bonds (:data:`hopwell.systems.builder.STIFF_BOND`): ``trans`` when the two heavy
-  substituents other than the C=X oxygen or sulphur lie on opposite sides of the C-N/C-O bond
-  (torsion beyond 90 degrees), ``cis`` otherwise (the fixed cis/trans wells of
+* amide-like bonds (:data:`hopwell.systems.builder.STIFF_BOND`) to nitrogen: ``trans`` when the
+  two heavy substituents other than the C=X oxygen or sulphur lie on opposite sides of the C-N
+  bond (torsion beyond 90 degrees), ``cis`` otherwise (the fixed cis/trans wells of
   :mod:`hopwell.analysis.states`);
+* ester and thioester C(=X)-O bonds: ``syn`` when the O-substituent is syn-periplanar to the
+  C=X atom (X=C-O-R within 90 degrees of 0, the Z ester, the preferred form of simple esters),
+  ``anti`` otherwise; the usual naming of ester conformers (e.g. Wiberg & Laidig, J. Am. Chem.
+  Soc. 109, 5935 (1987), from memory);
 * bonds between two sp3 atoms: ``anti`` for a centre beyond 120 degrees, ``gauche+`` within
   (30, 120], ``gauche-`` within [-120, -30) and ``syn`` within 30 degrees of 0; the usual
   binning of a threefold rotor whose minima lie at +-60 and 180 degrees (IUPAC Gold Book,
@@ -43,11 +47,11 @@ class TorsionLabel:
         The bond turned, by element and kind, e.g. ``"C(=O)-N amide"``.
     atoms : tuple of int
         The torsion's four atoms, numbered from 1.
-    kind : {"amide", "sp3", "other"}
+    kind : {"amide", "ester", "sp3", "other"}
         Which well names apply (see :func:`well_name`).
     flip : bool
         For amide-like bonds: the torsion's first or last atom is the C=X atom, so cis and
-        trans are read from the torsion turned by 180 degrees.
+        trans (or syn and anti) are read from the torsion turned by 180 degrees.
     """
 
     letter: str
@@ -98,7 +102,8 @@ def bond_label(mol: Chem.Mol, j: int, k: int) -> tuple[str, str]:
     -------
     name : str
         e.g. ``"C(=O)-N amide"``, ``"aryl-O"``, ``"C-C"``; the decorated end (C=X, aryl) first.
-    kind : {"amide", "sp3", "other"}
+    kind : {"amide", "ester", "sp3", "other"}
+        ``"ester"`` for C(=X)-O bonds, ``"amide"`` for the other amide-like ones.
     """
     a, b = mol.GetAtomWithIdx(j), mol.GetAtomWithIdx(k)
     stiff = {frozenset(m[0::2]) for m in mol.GetSubstructMatches(STIFF_BOND)}
@@ -111,7 +116,7 @@ def bond_label(mol: Chem.Mol, j: int, k: int) -> tuple[str, str]:
             kind = "imide"
         if kind == "amide" and any(n.GetSymbol() == "O" and n.GetDegree() > 1 for n in carbon.GetNeighbors()):
             kind = "carbamate"
-        return f"{_end_name(carbon)}-{other.GetSymbol()} {kind}", "amide"
+        return f"{_end_name(carbon)}-{other.GetSymbol()} {kind}", ("ester" if other.GetSymbol() == "O" else "amide")
     ends = sorted((a, b), key=lambda atom: (_end_name(atom) == atom.GetSymbol(), atom.GetSymbol() != "C",
                                             atom.GetSymbol()))
     sp3 = all(atom.GetHybridization() == Chem.HybridizationType.SP3 for atom in (a, b))
@@ -134,7 +139,7 @@ def torsion_labels(mol: Chem.Mol, torsions, backbone: bool = False) -> list[Tors
         i, j, k, m = (int(a) for a in atoms)
         bond, kind = bond_label(mol, j, k)
         flip = False
-        if kind == "amide":
+        if kind in ("amide", "ester"):
             # cis/trans are read between the substituents other than the C=X atom.
             flip = any(mol.GetAtomWithIdx(end).GetDegree() == 1 and mol.GetAtomWithIdx(end).GetSymbol() in "OS"
                        and mol.GetBondBetweenAtoms(end, centre).GetBondType() == Chem.BondType.DOUBLE
@@ -155,8 +160,10 @@ def _centre_text(centre_deg: float) -> str:
 def well_word(label: TorsionLabel, centre_deg: float) -> str | None:
     """The trade's name of a well centred at ``centre_deg`` (degrees), or None where it has none."""
     x = (centre_deg + 180.0) % 360.0 - 180.0
-    if label.kind == "amide":
+    if label.kind in ("amide", "ester"):
         x = (x + 360.0) % 360.0 - 180.0 if label.flip else x
+        if label.kind == "ester":  # R-C-O-R' trans is X=C-O-R' syn
+            return "syn" if abs(x) > 90.0 else "anti"
         return "trans" if abs(x) > 90.0 else "cis"
     if label.kind == "sp3":
         if abs(x) > 120.0:
