@@ -5,11 +5,12 @@ Run ``python -m hopwell.bench.energy`` (``--quick`` for a shorter run). Prints t
 1. energy calls per second for batches of conformers and Langevin steps per second, for a
    22-atom peptide and a drug-like molecule, on the Reference and CPU platforms, in vacuum and
    OBC2;
-2. for the drug-like molecule on the Reference platform in vacuum, the library's MMFF system
-   beside two other ways of writing the same energy, each built here from the library's own
-   parameters: the previous construction (stretch-bend and out-of-plane terms through OpenMM's
-   ``angle()``/``dihedral()`` functions) and the non-bonded pairs as ``CustomNonbondedForce``
-   objects (per-type tables, 1-2/1-3 exclusions, the scaled 1-4 electrostatics as a bond force).
+2. for the drug-like molecule in vacuum, the library's MMFF system (Reference platform) beside
+   other ways of writing the same energy, each built here from the library's own parameters:
+   the previous construction (stretch-bend and out-of-plane terms through OpenMM's
+   ``angle()``/``dihedral()`` functions) and the non-bonded pairs as one ``CustomNonbondedForce``
+   (per-type tables, 1-2/1-3/1-4 exclusions, the 1-4 pairs as a bond force), on the Reference
+   and on the CPU platform.
    "speed-up" is the library's rate over the row's; the largest energy difference from the
    library over the timed conformers is printed beside each, so that every row times the same
    energy function. ``--construction-only`` prints this table alone.
@@ -108,8 +109,8 @@ def geometric_function_system(system: openmm.System) -> openmm.System:
     return copy
 
 
-def _vdw_nonbonded(mol: Chem.Mol, props, topo: np.ndarray) -> openmm.CustomNonbondedForce:
-    """Buffered 14-7 over all pairs, RDKit's pair parameters tabulated by MMFF atom type."""
+def _pair_tables(mol: Chem.Mol, props) -> tuple[list, np.ndarray, np.ndarray]:
+    """MMFF atom types present and RDKit's vdW pair parameters (R*, epsilon) between them."""
     n_atoms = mol.GetNumAtoms()
     types = sorted({props.GetMMFFAtomType(i) for i in range(n_atoms)})
     example = {t: next(i for i in range(n_atoms) if props.GetMMFFAtomType(i) == t) for t in types}
@@ -117,43 +118,49 @@ def _vdw_nonbonded(mol: Chem.Mol, props, topo: np.ndarray) -> openmm.CustomNonbo
     for a, ta in enumerate(types):
         for b, tb in enumerate(types):
             _, _, rstar[a, b], epsilon[a, b] = props.GetMMFFVdWParams(example[ta], example[tb])
-    force = openmm.CustomNonbondedForce(
-        f"{mmff._VDW_EXPR}; rs = rstar(c1, c2); eps = epsilon(c1, c2)"
-    )
-    # Discrete2DFunction(xsize, ysize, values) reads values[x + xsize*y]; both tables are symmetric.
-    for table_name, table in (("rstar", rstar), ("epsilon", epsilon)):
-        force.addTabulatedFunction(
-            table_name, openmm.Discrete2DFunction(len(types), len(types), table.ravel().tolist())
-        )
-    force.addPerParticleParameter("c")
-    for i in range(n_atoms):
-        force.addParticle([float(types.index(props.GetMMFFAtomType(i)))])
-    for i, j in zip(*np.nonzero(np.triu(topo < 3, k=1))):
-        force.addExclusion(int(i), int(j))
-    return force
+    return types, rstar, epsilon
 
 
-def _electrostatic_nonbonded(mol: Chem.Mol, props, topo: np.ndarray):
-    """Buffered Coulomb over pairs 1-5 and beyond, plus the 1-4 pairs scaled by 0.75."""
+def _pairs_nonbonded(mol: Chem.Mol, props) -> list:
+    """Buffered 14-7 plus buffered Coulomb as one ``CustomNonbondedForce`` over pairs 1-5 and
+    beyond (RDKit's pair parameters tabulated by MMFF atom type), and the 1-4 pairs (vdW whole,
+    Coulomb scaled by 0.75) as a ``CustomBondForce``.
+
+    One force with one exclusion list, because OpenMM's CPU platform requires every
+    ``CustomNonbondedForce`` of a system to exclude the same pairs.
+    """
     n_atoms = mol.GetNumAtoms()
+    types, rstar, epsilon = _pair_tables(mol, props)
     charges = mmff.mmff_charges(props, n_atoms)
     dielectric = props.GetMMFFDielectricConstant()
     model = "distance" if mmff._is_distance_dielectric(props) else "constant"
-    pairs = openmm.CustomNonbondedForce(f"{mmff._ELE_EXPR[model]}; qq = q1*q2/{dielectric!r}")
+    vdw = mmff._VDW_EXPR.split(";")[0]  # the energy, before its "d = 10*r" definition
+    energy = f"{vdw} + {mmff._ELE_EXPR[model]}; d = 10*r"
+    pairs = openmm.CustomNonbondedForce(f"{energy}; qq = q1*q2/{dielectric!r}; rs = rstar(c1, c2);"
+                                        " eps = epsilon(c1, c2)")
+    # Discrete2DFunction(xsize, ysize, values) reads values[x + xsize*y]; both tables are symmetric.
+    for table_name, table in (("rstar", rstar), ("epsilon", epsilon)):
+        pairs.addTabulatedFunction(
+            table_name, openmm.Discrete2DFunction(len(types), len(types), table.ravel().tolist())
+        )
+    pairs.addPerParticleParameter("c")
     pairs.addPerParticleParameter("q")
-    for q in charges:
-        pairs.addParticle([float(q)])
-    one_four = openmm.CustomBondForce(mmff._ELE_EXPR[model])
-    one_four.addPerBondParameter("qq")
+    for i in range(n_atoms):
+        pairs.addParticle([float(types.index(props.GetMMFFAtomType(i))), float(charges[i])])
+    one_four = openmm.CustomBondForce(energy)
+    for name in ("rs", "eps", "qq"):
+        one_four.addPerBondParameter(name)
+    topo = Chem.GetDistanceMatrix(mol)
     for i, j in zip(*np.nonzero(np.triu(topo <= 3, k=1))):
         pairs.addExclusion(int(i), int(j))
         if topo[i, j] == 3:
-            one_four.addBond(int(i), int(j), [0.75 * charges[i] * charges[j] / dielectric])
+            _, _, rs, eps = props.GetMMFFVdWParams(int(i), int(j))
+            one_four.addBond(int(i), int(j), [rs, eps, 0.75 * charges[i] * charges[j] / dielectric])
     return [pairs, one_four]
 
 
 def custom_nonbonded_system(system: openmm.System, mol: Chem.Mol, props) -> openmm.System:
-    """A copy of an MMFF ``system`` with its pair forces as ``CustomNonbondedForce`` objects.
+    """A copy of an MMFF ``system`` with its pair forces as a ``CustomNonbondedForce``.
 
     Parameters
     ----------
@@ -165,14 +172,12 @@ def custom_nonbonded_system(system: openmm.System, mol: Chem.Mol, props) -> open
     Returns
     -------
     openmm.System
-        The same energy, with no cutoff: van der Waals over all pairs but 1-2 and 1-3 (MMFF
-        keeps 1-4 van der Waals whole), electrostatics excluding 1-4 as well, which a
-        ``CustomBondForce`` adds back scaled by 0.75.
+        The same energy, with no cutoff: both pair terms in the van der Waals force's group
+        (:func:`_pairs_nonbonded`), the electrostatic force removed.
     """
     copy = openmm.XmlSerializer.clone(system)
-    topo = Chem.GetDistanceMatrix(mol)
-    _replace_force(copy, "MMFF vdw", [_vdw_nonbonded(mol, props, topo)])
-    _replace_force(copy, "MMFF electrostatic", _electrostatic_nonbonded(mol, props, topo))
+    _replace_force(copy, "MMFF vdw", _pairs_nonbonded(mol, props))
+    copy.removeForce(_force_index(copy, "MMFF electrostatic"))
     return copy
 
 
@@ -234,25 +239,28 @@ def _construction_table(seconds: float, rng: np.random.Generator) -> None:
         "previous (angle/dihedral fns)": geometric_function_system(molsys.system),
         "pairs as CustomNonbondedForce": custom_nonbonded_system(molsys.system, molsys.mol, props),
     }
+    platforms = dict.fromkeys(systems, "Reference") | {"pairs as CustomNonbondedForce, CPU": "CPU"}
+    systems["pairs as CustomNonbondedForce, CPU"] = systems["pairs as CustomNonbondedForce"]
     x0 = molsys.seeds_nm[0]
     frames = x0 + rng.normal(0, 0.005, size=(64, *x0.shape))
     evaluators, context_s, energies_kj = {}, {}, {}
     for name, system in systems.items():
         start = time.perf_counter()
-        evaluators[name] = EnergyEvaluator(system, 300.0, platform="Reference", seed=1)
+        evaluators[name] = EnergyEvaluator(system, 300.0, platform=platforms[name], seed=1)
         context_s[name] = time.perf_counter() - start
         energies_kj[name] = evaluators[name].energies_kj(frames)
     rates = _interleaved_rates(evaluators, frames, x0, seconds)
     library = next(iter(systems))
-    print(f"\n{MMFF_LABEL}, {molsys.n_atoms} atoms, vacuum, Reference platform, {len(frames)} conformers")
-    header = (f"{'construction':<33} {'energies/s':>10} {'steps/s':>8} {'speed-up E':>10}"
+    print(f"\n{MMFF_LABEL}, {molsys.n_atoms} atoms, vacuum, Reference platform unless named,"
+          f" {len(frames)} conformers")
+    header = (f"{'construction':<38} {'energies/s':>10} {'steps/s':>8} {'speed-up E':>10}"
               f" {'speed-up steps':>14} {'context s':>9} {'max |dE| kJ/mol':>15}")
     print(header)
     print("-" * len(header))
     for name in systems:
         energy_rate, step_rate = rates[name]
         d_energy_kj = np.abs(energies_kj[name] - energies_kj[library]).max()
-        print(f"{name:<33} {energy_rate:>10.0f} {step_rate:>8.0f}"
+        print(f"{name:<38} {energy_rate:>10.0f} {step_rate:>8.0f}"
               f" {rates[library][0] / energy_rate:>10.2f} {rates[library][1] / step_rate:>14.2f}"
               f" {context_s[name]:>9.2f} {d_energy_kj:>15.1e}")
 
