@@ -87,7 +87,8 @@ def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict
     n_walkers = series.shape[0]
     named = [model.kind == "backbone" or (model.kind == "user" and s < n_states - 1) for s in range(n_states)]
     local_move = local_move_counts(store)
-    verdict = judge(series, pops, model.names, named, importance, local_move)
+    found, found_positions_nm = found_basins(store)
+    verdict = judge(series, pops, model.names, named, importance, local_move, found)
     summary = {
         "temperature_K": temperature,
         "verdict": verdict.label,
@@ -123,6 +124,8 @@ def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict
         "move_acceptance": move_acceptance(store) | {"langevin_rolled_back": (
             local_move["rolled_back"] / local_move["segments"] if local_move["segments"] else None)},
         "local_move": local_move,
+        "found_basins": found,
+        "_found_positions_nm": found_positions_nm,
         "importance_sampling": importance,
         # A run without flow proposals still records a (never accepted) flow-move state.
         "acceptance_over_time": (acceptance_over_time(production.acceptance)
@@ -166,6 +169,25 @@ def local_move_counts(store: RunStore) -> dict:
     own = counts(store)
     shards = [counts(shard) for shard, _ in shard_stores(store.path)]
     return {name: own[name] + sum(c[name] - own[name] for c in shards) for name in keys}
+
+
+def found_basins(store: RunStore) -> tuple[list[dict], np.ndarray]:
+    """The basin probes' finds (:mod:`hopwell.sampling.probes`) over a run and its shards.
+
+    A shard starts from the training run's checkpoint, so a find is counted once by its cycle
+    and energy. Returns the finds (``cycle``, ``production``, ``energy_kj``,
+    ``above_lowest_kj``, ordered by cycle) and their minimized structures,
+    shape ``(n_found, n_atoms, 3)``.
+    """
+    finds = {}
+    for run in [store] + [shard for shard, _ in shard_stores(store.path)]:
+        state = run.read_state()
+        if state is None or "found_basins" not in state:
+            continue
+        for found, positions_nm in zip(json.loads(str(state["found_basins"])), state["found_positions_nm"]):
+            finds.setdefault((found["cycle"], round(found["energy_kj"], 6)), (found, np.array(positions_nm)))
+    ordered = [finds[k] for k in sorted(finds)]
+    return [f for f, _ in ordered], (np.stack([x for _, x in ordered]) if ordered else np.empty((0, 0, 3)))
 
 
 def _reweighted(store, reweight, production, series, model, rng, n_boot) -> dict:

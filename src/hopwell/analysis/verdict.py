@@ -40,7 +40,8 @@ class Verdict:
 
 
 def judge(series: np.ndarray, estimate: stats.PopulationResult, names: list[str],
-          named: list[bool], importance: dict | None = None, local_move: dict | None = None) -> Verdict:
+          named: list[bool], importance: dict | None = None, local_move: dict | None = None,
+          found_basins: list[dict] | None = None) -> Verdict:
     """Apply the verdict's rules to a run.
 
     Parameters
@@ -63,6 +64,10 @@ def judge(series: np.ndarray, estimate: stats.PopulationResult, names: list[str]
         (:func:`hopwell.analysis.summary.local_move_counts`): segments undone after the fact and
         production states outside the guard, where the Monte Carlo moves are not reversible, are
         warned about (both are expected to be 0).
+    found_basins : list of dict, optional
+        The basin probes' finds (:mod:`hopwell.sampling.probes`; ``production``,
+        ``above_lowest_kj``): one found in production, which no move targets, makes the run "not
+        converged"; those found in training (dart centres from then on) are a warning.
 
     Returns
     -------
@@ -111,4 +116,14 @@ def judge(series: np.ndarray, estimate: stats.PopulationResult, names: list[str]
     if local_move is not None and local_move.get("rolled_back", 0) > 0:
         out.warnings.append(f"{local_move['rolled_back']} of {local_move['segments']} Langevin segments were"
                             " rolled back after an energy explosion (a veto after the fact biases the chain)")
+    late = [b for b in found_basins or [] if b["production"]]
+    early = [b for b in found_basins or [] if not b["production"]]
+    if late:
+        lowest = min(b["above_lowest_kj"] for b in late)
+        out.reasons.append(f"{len(late)} basin(s) found in production that no move targets (the lowest"
+                           f" {lowest:.1f} kJ/mol above the known minima): their population may be missing;"
+                           " seed them (found-basins.sdf) and run again")
+    if early:
+        out.warnings.append(f"found during the run: {len(early)} basin(s) no seed was in (dart centres from"
+                            " then on); seed them next time (found-basins.sdf)")
     return out

@@ -134,6 +134,11 @@ def rows_within(zmat: ZMatrix, atoms) -> np.ndarray:
                          int(zmat.torsion_ref[k + 3])} <= wanted], dtype=int)
 
 
+def region_rows(zmat: ZMatrix, moving: np.ndarray, pucker_rows: np.ndarray = ()) -> np.ndarray:
+    """The torsion rows that tell basins apart: rotatable principal rows and ring-pucker rows."""
+    return np.union1d(rotatable_rows(zmat, moving), np.asarray(pucker_rows, dtype=int)).astype(int)
+
+
 def build_darts(zmat: ZMatrix, moving: np.ndarray, centres_nm: np.ndarray,
                 pucker_rows: np.ndarray = (), ring_rows: np.ndarray = ()) -> Darts | None:
     """Darts between the distinct basins of ``centres_nm`` (minimized seeds); None if under two.
@@ -152,7 +157,7 @@ def build_darts(zmat: ZMatrix, moving: np.ndarray, centres_nm: np.ndarray,
         The rows among those that are ring torsions (all four atoms in one saturated ring,
         :func:`rows_within`): centres where most of them change sign are mirrored.
     """
-    rows = np.union1d(rotatable_rows(zmat, moving), np.asarray(pucker_rows, dtype=int)).astype(int)
+    rows = region_rows(zmat, moving, pucker_rows)
     if len(rows) == 0 or len(centres_nm) < 2:
         return None
     with torch.no_grad():

@@ -90,4 +90,23 @@ def write_ensemble(run_dir: Path, summary: dict) -> list[Path]:
             m.SetProp("_Name", f"{names[state]} (E = {energy:.2f} kJ/mol)")
             atomic_write_bytes(path, (Chem.MolToMolBlock(m) + "$$$$\n").encode())
         written.append(path)
+    if len(summary.get("_found_positions_nm", [])):
+        written.append(write_found_basins(store.path / "found-basins.sdf", mol, summary))
     return written
+
+
+def write_found_basins(path: Path, mol: Chem.Mol, summary: dict) -> Path:
+    """The basin probes' minima as one SDF record each, named by when they were found: seeds
+    for the next run (``hopwell run found-basins.sdf`` or with the original input)."""
+    records = []
+    for found, xyz in zip(summary["found_basins"], summary["_found_positions_nm"]):
+        m = Chem.Mol(mol)
+        conf = m.GetConformer()
+        for i, row in enumerate(np.asarray(xyz) * 10.0):
+            conf.SetAtomPosition(i, row.tolist())
+        phase = "production" if found["production"] else "training"
+        m.SetProp("_Name", f"found in {phase} at cycle {found['cycle']}"
+                           f" ({found['above_lowest_kj']:.1f} kJ/mol above the lowest known minimum)")
+        records.append(Chem.MolToMolBlock(m) + "$$$$\n")
+    atomic_write_bytes(path, "".join(records).encode())
+    return path

@@ -8,6 +8,9 @@ Metropolis-Hastings ratio in its own docstring):
 3. one-torsion redraws (:class:`~hopwell.moves.one_torsion.OneTorsion`) and seed darts between
    the basins of the minimized seeds (:class:`~hopwell.moves.darts.SeedDarts`).
 
+After the moves, basin probes look for minima outside every known basin
+(:mod:`hopwell.sampling.probes`; they work on copies and never change a walker).
+
 The chain state is recorded after the local segment and after the other moves (a fixed
 sub-sampling of a stationary chain is stationary). During training the flow is refit every few
 cycles on recent walker states (:class:`~hopwell.flow.training.FlowTrainer`); the chain is then
@@ -34,15 +37,17 @@ from hopwell.coords.guards import ProposalGuard, refuse_failing_seeds
 from hopwell.coords.internal import build_zmatrix, cartesian_to_internal
 from hopwell.flow.training import FlowTrainer
 from hopwell.moves.base import MoveCounters, RandomStreams, Walkers
-from hopwell.moves.darts import SeedDarts, build_darts, rows_placing, rows_within
+from hopwell.coords.torsions import rotatable_rows
+from hopwell.moves.darts import SeedDarts, build_darts, region_rows, rows_placing, rows_within
 from hopwell.moves.flow_block import FlowBlock
 from hopwell.moves.langevin import LangevinSegment
 from hopwell.moves.one_torsion import OneTorsion
+from hopwell.sampling.probes import BasinProbe, FoundBasin
 from hopwell.sampling.records import ChunkQueue, Snapshot
 from hopwell.sampling.settings import Budget, SamplerSettings
 from hopwell.sampling.store import MOVE_FLOW, MOVE_LANGEVIN, RunStore
 from hopwell.systems.builder import rotatable_bonds
-from hopwell.systems.energy import EnergyEvaluator
+from hopwell.systems.energy import EnergyEvaluator, kT_kj
 from hopwell.systems.rings import saturated_six_rings
 
 
@@ -76,9 +81,12 @@ class Sampler:
         self.pucker_atoms = sorted({a for ring in saturated_six_rings(mol)
                                     for a in ring.atoms + tuple(x for _, x in ring.substituents)})
         self.trainer = FlowTrainer(self.zmat, mol, seeds_nm, settings, settings.seed)
-        self.dart_centres_nm = None  # the minimized seeds, kept in the checkpoint
+        # The known basins: the minimized seeds and the probes' finds in training (the dart
+        # centres), then the finds in production; all kept in the checkpoint.
+        self.dart_centres_nm = None
         if settings.method == "flow" and settings.darts_per_cycle > 0:
             self.dart_centres_nm = self.evaluator.minimize(seeds_nm)
+        self.found_basins: list[FoundBasin] = []
         n_walkers = n_walkers or len(seeds_nm)
         positions = np.stack([seeds_nm[k % len(seeds_nm)] for k in range(n_walkers)])
         self.walkers = Walkers(positions, self.evaluator.energies_kj(positions))
@@ -108,11 +116,25 @@ class Sampler:
         self.local = LangevinSegment(self._segment_evaluators(), s.langevin_steps, self._log, guard=self.guard)
         self.flow_move = FlowBlock(self.trainer, self.guard, self.evaluator, s.proposals_per_cycle)
         self.one_torsion = OneTorsion(self.trainer, self.guard, self.evaluator, s.single_moves_per_cycle)
+        self._build_darts()
+        pucker_rows = rows_placing(self.zmat, self.pucker_atoms)
+        self.basin_probe = (BasinProbe(self.zmat, rotatable_rows(self.zmat, self.trainer.all_moving),
+                                       region_rows(self.zmat, self.trainer.all_moving, pucker_rows), self.guard,
+                                       self.evaluator, s, kT_kj(s.temperature_K))
+                            if self.dart_centres_nm is not None and s.probes_per_cycle + s.probe_every_production > 0
+                            else None)  # the dart centres are the known basins
+
+    def _build_darts(self) -> None:
+        """The seed darts over the current dart centres (their counters kept when rebuilt)."""
+        old = getattr(self, "seed_darts", None)
         darts = (build_darts(self.zmat, self.trainer.all_moving, self.dart_centres_nm,
                              rows_placing(self.zmat, self.pucker_atoms),
                              np.concatenate([rows_within(self.zmat, r) for r in self.ring_atoms] + [[]]).astype(int))
                  if self.dart_centres_nm is not None else None)
-        self.seed_darts = SeedDarts(darts, self.zmat, self.guard, self.evaluator, s.darts_per_cycle) if darts else None
+        self.seed_darts = (SeedDarts(darts, self.zmat, self.guard, self.evaluator, self.settings.darts_per_cycle)
+                           if darts else None)
+        if old is not None and self.seed_darts is not None:
+            self.seed_darts.counters = old.counters
         # Production walker states per dart region (index 0: outside every region).
         self.basin_counts = np.zeros(1 + (darts.n_centres if darts else 0), dtype=np.int64)
 
@@ -200,6 +222,7 @@ class Sampler:
                     self.queue.add_proposals(result.proposals | {
                         "cycle": np.full(len(result.proposals["walker"]), self.cycle, np.int64)})
         after_all = self.snapshot()
+        self._probe()
         for walker in which:  # records in walker order, each walker's local state first
             self.queue.add_state(after_local, walker, self.cycle, MOVE_LANGEVIN, production)
             if others:
@@ -225,12 +248,36 @@ class Sampler:
         return Snapshot(self.walkers.positions_nm.copy(), self.walkers.energies_kj.copy(),
                         self.elapsed_s + time.perf_counter() - self._cycle_start)
 
+    def _probe(self) -> None:
+        """This cycle's basin probes; a find in training becomes a dart centre."""
+        s = self.settings
+        if self.basin_probe is None:
+            return
+        n = (s.probes_per_cycle if not self.production else
+             int(s.probe_every_production > 0 and self.cycle % s.probe_every_production == 0))
+        for _ in range(n):
+            known = np.concatenate([self.dart_centres_nm] + [b.positions_nm[None] for b in self.found_basins
+                                                              if b.production])
+            known_kj = self.evaluator.energies_kj(known)
+            walker = int(self.streams.numpy.integers(self.n_walkers))
+            found = self.basin_probe.probe(self.walkers.positions_nm[walker], known, known_kj, self.streams.numpy)
+            if found is None:
+                continue
+            positions_nm, energy_kj = found
+            lowest = float(known_kj.min())
+            self.found_basins.append(FoundBasin(self.cycle, self.production, energy_kj, energy_kj - lowest, positions_nm))
+            self._log(f"probe found a basin {energy_kj - lowest:.1f} kJ/mol above the lowest known minimum"
+                      + (" in production: no move targets it" if self.production else "; it is a dart centre now"))
+            if not self.production:
+                self.dart_centres_nm = np.concatenate([self.dart_centres_nm, positions_nm[None]])
+                self._build_darts()
+
     # -- persistence ----------------------------------------------------------------------
     def _counters_json(self) -> dict:
         out = {"dart": MoveCounters().to_json()}
         for move in self._all_moves:
             out.update(move.state_dict())
-        return out
+        return out | (self.basin_probe.state_dict() if self.basin_probe else {})
 
     def flush(self) -> None:
         """Write queued cycles as one chunk, then the checkpoint that counts it."""
@@ -253,6 +300,9 @@ class Sampler:
             "stats": np.str_(json.dumps(self._counters_json())),
             **({} if self.dart_centres_nm is None else {"dart_centres_nm": self.dart_centres_nm,
                                                         "basin_counts": self.basin_counts}),
+            **({} if not self.found_basins else {
+                "found_basins": np.str_(json.dumps([b.as_dict() for b in self.found_basins])),
+                "found_positions_nm": np.stack([b.positions_nm for b in self.found_basins])}),
         })
         self.store.prune_flows(keep=flow_path)
 
@@ -275,8 +325,10 @@ class Sampler:
         self._build_moves()
         if "basin_counts" in state:
             self.basin_counts = np.array(state["basin_counts"])
+        self.found_basins = [FoundBasin(**found, positions_nm=x) for found, x in zip(
+            json.loads(str(state.get("found_basins", "[]"))), state.get("found_positions_nm", []))]
         counters = json.loads(str(state["stats"]))
-        for move in self._all_moves:
+        for move in self._all_moves + ([self.basin_probe] if self.basin_probe else []):
             move.load_state_dict(counters)
         self._set_phase()
         if not self.production:  # rebuild the training buffer from the recorded training states
