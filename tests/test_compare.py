@@ -99,6 +99,30 @@ def test_compare_cli_end_to_end(tmp_path):
             assert row["ci95_width_mean"] is not None and 0 <= row["ci95_width_mean"] < 1
 
 
+def test_run_jobs_on_dask_report_each_run_and_a_failed_one_in_one_line(tmp_path, capfd):
+    """Two workers: every run is done and reported once; a run that fails names itself, no hang."""
+    from hopwell.sampling.compare import plan_runs, run_jobs
+    from hopwell.sampling.sampler import SamplerSettings
+    from hopwell.sampling.store import RunStore
+    from hopwell.systems.builder import BuildOptions
+
+    jobs = plan_runs("CCCC", tmp_path / "ok", ["md"], 2, 0.5, BuildOptions(n_seeds=4), SamplerSettings(seed=4))
+    done = []
+    run_jobs(jobs, 2, progress=done.append)
+    assert sorted(job["dir"] for job in done) == sorted(job["dir"] for job in jobs)
+    for job in jobs:
+        assert int(RunStore.open(job["dir"]).read_state()["production_samples"]) > 0
+
+    # A run that cannot start, next to one that would sample for a minute: the failure ends the
+    # whole call at once, the other run cancelled.
+    long_run = dict(jobs[0], dir=str(tmp_path / "bad" / "runs" / "md-0"), seconds=60.0)
+    broken = dict(jobs[1], dir=str(tmp_path / "bad" / "runs" / "md-1"), input="C1CC")
+    with pytest.raises(InputError, match=r"bad/runs/md-1: ") as failure:
+        run_jobs([long_run, broken], 2)
+    assert "\n" not in str(failure.value)
+    assert "Compute Failed" not in capfd.readouterr().err  # the workers' own log lines kept quiet
+
+
 @pytest.mark.parametrize("args, message", [
     (["--methods", "flow,mc"], "unknown method"),
     (["--budget", "0"], "must be positive"),

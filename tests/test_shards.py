@@ -3,14 +3,21 @@
 The chain's torsion populations are exact ratios of scipy.integrate.quad integrals (see
 tests/chain_systems.py). Training runs in this process; production runs in two shards on two
 worker processes, one of them interrupted first (a checkpoint part-way and an uncounted chunk,
-as a ``kill -9`` between a chunk and its checkpoint leaves it).
+as a ``kill -9`` between a chunk and its checkpoint leaves it). A Dask worker process killed
+while its shard samples makes the scheduler sample that shard again, from its last checkpoint.
 """
 
 from __future__ import annotations
 
 import io
+import json
+import os
+import re
 import shutil
+import signal
+import time
 from collections import Counter
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import asdict
 
 import numpy as np
@@ -29,11 +36,14 @@ from chain_systems import (
 )
 from rdkit import Chem
 
+from hopwell.analysis.production import move_acceptance
 from hopwell.analysis.stats import population_estimate, split_rhat
 from hopwell.sampling.run import resume_run
 from hopwell.sampling.sampler import Budget, SamplerSettings
 from hopwell.sampling.shards import (
     create_shards,
+    dask_client,
+    iter_pooled_chunks,
     run_shards,
     shard_finished,
     shard_status,
@@ -164,10 +174,73 @@ def test_interrupted_shard_resumes_and_pooled_populations_match_quadrature(train
         assert split_rhat(np.stack([(s[:n] == well).astype(float) for s in series])) < 1.05
 
 
+def _kill_worker_of(client, key_prefix: str, store: RunStore, timeout_s: float = 120.0) -> None:
+    """SIGKILL the worker process sampling the task ``key_prefix...`` once ``store``'s checkpoint counts a chunk."""
+    deadline = time.monotonic() + timeout_s
+    while time.monotonic() < deadline:
+        if int(store.read_state()["next_chunk"]) >= 1:
+            busy = [worker for worker, keys in client.processing().items()
+                    if any(str(key).startswith(key_prefix) for key in keys)]
+            if busy:
+                pid = client.run(os.getpid, workers=busy[:1])[busy[0]]
+                os.kill(pid, signal.SIGKILL)
+                return
+        time.sleep(0.05)
+    raise AssertionError(f"{store.path} checkpointed no chunk within {timeout_s} s")
+
+
+def _counters(run_dir) -> dict:
+    """The ``stats`` JSON of a run directory's checkpoint, read with numpy alone."""
+    with np.load(run_dir / "state.npz") as state:
+        return json.loads(str(state["stats"]))
+
+
+def test_worker_killed_mid_shard_resumes_from_its_checkpoint(trained, tmp_path):
+    run_dir = tmp_path / "run"
+    shutil.copytree(trained, run_dir)
+    shard0 = shard_stores(run_dir)[0][0]
+    per_shard = 1000  # 250 cycles of 2 walkers, 2 records each: 5 chunks of 50 cycles
+    with dask_client(2) as client, ThreadPoolExecutor(1) as thread:
+        running = thread.submit(run_shards, run_dir, scheduler=client.scheduler.address,
+                                budget=Budget(samples=2 * per_shard))
+        _kill_worker_of(client, "shard-0-", shard0)
+        results = running.result(timeout=300)
+    assert [r["production_samples"] for r in results] == [per_shard, per_shard]
+    resumes = [int(c) for c in re.findall(r"resumed at cycle (\d+)", (shard0.path / "progress.log").read_text())]
+    # Sampled twice: from the end of training, then again from a checkpoint part-way (not from the start).
+    assert len(resumes) == 2 and resumes[0] == SETTINGS.training_cycles < resumes[1], resumes
+
+    training_end = SETTINGS.training_cycles
+    for store, _ in shard_stores(run_dir):
+        state = store.read_state()
+        assert store.chunk_indices() == list(range(int(state["next_chunk"]))), "chunk indices not contiguous"
+        keys, production = _records(store)
+        assert production.all() and max(Counter(keys).values()) == 1, "a record counted twice"
+        assert set(keys) == {(c, w, m) for c in range(training_end, int(state["cycle"])) for w in range(2)
+                             for m in (MOVE_LANGEVIN, MOVE_FLOW)}, "records lost"
+        assert int(state["production_samples"]) == len(keys) == per_shard
+    pooled = sum(int(c["state_production"].sum()) for c in iter_pooled_chunks(RunStore.open(run_dir)))
+    assert pooled == 2 * per_shard  # the sum of the shards' budgets
+
+    # Move acceptance pooled over the shards. The flow's production counters against the proposal
+    # records of the chunks (an independent tally, kept apart from the checkpoints' counters) ...
+    acceptance = move_acceptance(RunStore.open(run_dir))
+    records = [(sum(int(c["proposal_accepted"].sum()) for c in store.iter_chunks()),
+                sum(len(c["proposal_accepted"]) for c in store.iter_chunks())) for store, _ in shard_stores(run_dir)]
+    assert acceptance["flow_production"] == pytest.approx(sum(a for a, _ in records) / sum(n for _, n in records))
+    assert [row["flow_production"] for row in acceptance["per_shard"]] == pytest.approx([a / n for a, n in records])
+    # ... and every move against the state.npz counters: the training run's, plus what each shard added.
+    parent = _counters(run_dir)
+    shards = [_counters(store.path) for store, _ in shard_stores(run_dir)]
+    for key, label in (("training", "flow_training"), ("production", "flow_production"), ("dart", "dart")):
+        accepted, proposed = (parent[key][field] + sum(s[key][field] - parent[key][field] for s in shards)
+                              for field in ("accepted", "proposed"))
+        assert proposed > 0 and acceptance[label] == pytest.approx(accepted / proposed), label
+    assert acceptance["flow_training"] == pytest.approx(parent["training"]["accepted"] / parent["training"]["proposed"])
+
+
 def test_cli_sharded_run_status_and_report(tmp_path):
     """The command line end to end on butane: train, two shards on two workers, status, report."""
-    import json
-    import os
     import subprocess
     import sys
     from pathlib import Path
@@ -194,6 +267,20 @@ def test_cli_sharded_run_status_and_report(tmp_path):
     summary = json.loads(report.stdout)
     assert summary["walkers"] == 3 and summary["samples"] == 120
     assert len(summary["per_shard_populations"]) == 2
+    # Move acceptance pooled over the shards, against the checkpoints' counters read with numpy:
+    # the training run's, plus what each shard added to the counters it started from.
+    parent = _counters(run_dir)
+    shards = [_counters(run_dir / "shards" / str(k)) for k in range(2)]
+    for key, label in (("training", "flow_training"), ("production", "flow_production"),
+                       ("single", "one_torsion"), ("dart", "dart")):
+        accepted, proposed = (parent[key][field] + sum(s[key][field] - parent[key][field] for s in shards)
+                              for field in ("accepted", "proposed"))
+        expected = accepted / proposed if proposed else None
+        assert summary["move_acceptance"][label] == pytest.approx(expected), label
+    assert summary["move_acceptance"]["one_torsion"] is not None  # single moves ran in the shards
+    own = [(s["production"]["accepted"], s["production"]["proposed"]) for s in shards]
+    assert [row["flow_production"] for row in summary["move_acceptance"]["per_shard"]] == pytest.approx(
+        [a / n for a, n in own])
     bad = hopwell("run", "CCCC", "-o", str(tmp_path / "bad"), "--samples", "10", "--walkers", "2",
                   "--shards", "3", "--workers", "1")
     assert bad.returncode == 2 and len(bad.stderr.strip().splitlines()) == 1, bad.stderr

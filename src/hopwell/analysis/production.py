@@ -162,20 +162,49 @@ def walker_series(values: np.ndarray, production: Production) -> np.ndarray:
     return np.stack([r[:n] for r in rows])
 
 
-def move_acceptance(store: RunStore) -> dict:
-    """Whole-run acceptance by move type, from the checkpoint's counters (None where unused)."""
+MOVE_COUNTERS = {"training": "flow_training", "production": "flow_production", "single": "one_torsion",
+                 "dart": "dart"}  # checkpoint key: report label
+
+
+def _saved_counters(store: RunStore) -> dict:
+    """The checkpoint's ``stats`` JSON (every move's counters); empty before the first checkpoint."""
     state = store.read_state()
-    saved = json.loads(str(state["stats"])) if state is not None else {}
-    names = {"training": "flow_training", "production": "flow_production", "single": "one_torsion",
-             "dart": "dart"}
-    out = {label: (saved[key]["accepted"] / saved[key]["proposed"]
-                   if key in saved and saved[key]["proposed"] else None)
-           for key, label in names.items()}
+    return json.loads(str(state["stats"])) if state is not None else {}
+
+
+def _tallies(saved: dict) -> dict[str, np.ndarray]:
+    """``(accepted, proposed)`` of each move in :data:`MOVE_COUNTERS` (zeros where a move never ran)."""
+    return {key: np.array([int(saved.get(key, {}).get("accepted", 0)), int(saved.get(key, {}).get("proposed", 0))])
+            for key in MOVE_COUNTERS}
+
+
+def _rates(tallies: dict[str, np.ndarray]) -> dict:
+    return {label: (int(tallies[key][0]) / int(tallies[key][1]) if tallies[key][1] else None)
+            for key, label in MOVE_COUNTERS.items()}
+
+
+def move_acceptance(store: RunStore) -> dict:
+    """Whole-run acceptance by move type, from the checkpoints' counters (None where unused).
+
+    A sharded run's acceptance is pooled over its shards: accepted over proposed, summed over
+    the training run and what each shard added to the counters it started from (a shard
+    starts from the training run's checkpoint). A sharded run also gets ``per_shard``: each
+    shard's own acceptance, in shard order, as the report's ``per_shard_populations``.
+    """
+    from hopwell.sampling.shards import shard_stores
+
+    saved = _saved_counters(store)
+    own = _tallies(saved)
+    added = [{key: value - own[key] for key, value in _tallies(_saved_counters(shard)).items()}
+             for shard, _ in shard_stores(store.path)]
+    out = _rates({key: own[key] + sum(part[key] for part in added) for key in MOVE_COUNTERS})
     exchange = saved.get("exchange")
     if exchange:  # replica exchange: per neighbour pair of the ladder
         out["exchange"] = sum(exchange["accepted"]) / max(1, sum(exchange["attempted"]))
         out["exchange_per_pair"] = [a / t if t else None for a, t in zip(exchange["accepted"], exchange["attempted"])]
         out["ladder_K"] = exchange["temperatures_K"]
+    if added:
+        out["per_shard"] = [_rates(part) for part in added]
     return out
 
 

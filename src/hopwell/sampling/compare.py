@@ -25,9 +25,7 @@ A reference file (TOML) names sums of states and their reference populations::
 from __future__ import annotations
 
 import json
-import multiprocessing
 import tomllib
-from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, replace
 from pathlib import Path
 
@@ -109,7 +107,7 @@ def running_populations(labels: np.ndarray, time_s: np.ndarray, n_states: int,
 
 # -- running the methods --------------------------------------------------------------------
 def _run_one(job: dict) -> str:
-    """Worker: one run directory (module level, so that a process pool can pickle it)."""
+    """Worker: one run directory (module level, so that it pickles into a Dask task)."""
     import torch
 
     from hopwell.sampling.run import start_run
@@ -139,17 +137,24 @@ def plan_runs(input_spec: str, out_dir: Path, methods, repeats: int, budget_s: f
 
 
 def run_jobs(jobs: list[dict], workers: int, progress=None) -> None:
-    """Run the jobs, ``workers`` at a time in separate processes (one process: in this one)."""
+    """Run the jobs, ``workers`` at a time (one: in this process, in order).
+
+    Several workers: one Dask task per job on a LocalCluster of ``workers`` single-threaded
+    processes (:func:`hopwell.sampling.shards.dask_client`, the engine of sharded production).
+    ``progress(job)`` is called as each job finishes. The first job that fails cancels the rest
+    and raises, naming its run directory (see :func:`hopwell.sampling.shards.run_tasks`).
+    """
+    from hopwell.sampling.shards import dask_client, run_tasks
+
     if workers <= 1:
         for job in jobs:
             _run_one(job)
             if progress:
                 progress(job)
         return
-    with ProcessPoolExecutor(max_workers=workers, mp_context=multiprocessing.get_context("spawn")) as pool:
-        for job, _ in zip(jobs, pool.map(_run_one, jobs)):
-            if progress:
-                progress(job)
+    with dask_client(workers) as client:
+        run_tasks(client, _run_one, [(job,) for job in jobs], [job["dir"] for job in jobs],
+                  on_done=(lambda k, _result: progress(jobs[k])) if progress else None)
 
 
 # -- reading them back ----------------------------------------------------------------------

@@ -15,14 +15,22 @@ directory: resuming a shard drops the chunks its checkpoint does not count and r
 work, and nothing is lost or counted twice.
 
 Shards run on Dask distributed (https://distributed.dask.org): a ``LocalCluster`` of
-single-threaded worker processes, or an existing cluster named by its scheduler address.
+single-threaded worker processes, or an existing cluster named by its scheduler address. A
+shard whose worker process dies (``kill -9``, out of memory) is sampled again by the scheduler on
+another worker, or on the one its nanny restarts, and resumes from the shard's last checkpoint;
+a LocalCluster allows ``WORKER_DEATHS_ALLOWED`` such deaths per shard (Dask's
+``distributed.scheduler.allowed-failures``; an existing scheduler keeps its own setting). The
+same engine runs ``hopwell compare``'s runs (:func:`dask_client`, :func:`run_tasks`).
 """
 
 from __future__ import annotations
 
 import json
+import logging
 import math
 import os
+import uuid
+from contextlib import contextmanager
 from pathlib import Path
 
 import numpy as np
@@ -40,6 +48,7 @@ from hopwell.sampling.store import (
 
 SHARD_DIR = "shards"
 PLAN_FILE = "plan.toml"
+WORKER_DEATHS_ALLOWED = 3  # a task whose worker process dies this often fails (Dask's default, made explicit)
 
 
 def shard_path(run_dir: Path, index: int) -> Path:
@@ -157,17 +166,93 @@ def sample_shard(path: str, samples: int | None = None, seconds: float | None = 
     return {"shard": path, "cycle": sampler.cycle, "production_samples": sampler.production_samples}
 
 
-def _client(workers: int | None, scheduler: str | None):
-    """A Dask client: on ``scheduler`` if given, else on a new LocalCluster of single-threaded processes."""
+def _client(workers: int | None, scheduler: str | None, quiet: bool = False):
+    """A Dask client: on ``scheduler`` if given, else on a new LocalCluster of single-threaded processes.
+
+    ``quiet`` keeps the LocalCluster's own log lines (a task's failure, a worker's restart) off
+    the terminal, for callers that report every task's outcome themselves (:func:`run_tasks`).
+    """
+    import dask
     from dask.distributed import Client, LocalCluster
 
     if scheduler:
         return Client(scheduler), None
     for name in ("OMP_NUM_THREADS", "OPENMM_CPU_THREADS", "MKL_NUM_THREADS"):
         os.environ.setdefault(name, "1")  # inherited by the worker processes
-    cluster = LocalCluster(n_workers=workers or os.cpu_count() or 1, threads_per_worker=1, processes=True,
-                           dashboard_address=":0")
+    with dask.config.set({"distributed.scheduler.allowed-failures": WORKER_DEATHS_ALLOWED}):
+        cluster = LocalCluster(n_workers=workers or os.cpu_count() or 1, threads_per_worker=1, processes=True,
+                               dashboard_address=":0", silence_logs=logging.CRITICAL if quiet else logging.WARN)
     return Client(cluster), cluster
+
+
+@contextmanager
+def dask_client(workers: int | None = None, scheduler: str | None = None):
+    """A quiet :func:`_client` for the ``with`` block, closed (with its LocalCluster, if any) at the end.
+
+    Parameters
+    ----------
+    workers : int, optional
+        Single-threaded worker processes of a new LocalCluster (default: one per core).
+    scheduler : str, optional
+        Address of an existing Dask scheduler to use instead of a LocalCluster.
+    """
+    client, cluster = _client(workers, scheduler, quiet=True)
+    try:
+        yield client
+    finally:
+        client.close()
+        if cluster is not None:
+            cluster.close()
+
+
+def task_key(name: str) -> str:
+    """A unique Dask key that starts with ``name`` (so a cluster's task list names the work)."""
+    return f"{name}-{uuid.uuid4().hex[:12]}"
+
+
+def run_tasks(client, function, jobs: list[tuple], names: list[str], on_done=None) -> list:
+    """Run ``function(*job)`` for each job as one Dask task; return the results in job order.
+
+    Parameters
+    ----------
+    client : distributed.Client
+    function : callable
+        Module-level, so that it pickles.
+    jobs : list of tuple
+        Each task's arguments.
+    names : list of str
+        Each task's name (its key starts with it; errors name it).
+    on_done : callable, optional
+        Called as ``on_done(index, result)`` as each task finishes, in the order they finish.
+
+    Raises
+    ------
+    InputError
+        A task raised an InputError, or its worker process died more often than the scheduler
+        allows (``distributed.scheduler.allowed-failures``); the tasks not finished are cancelled.
+    RuntimeError
+        A task raised any other exception (chained; the rest are cancelled).
+    """
+    from dask.distributed import KilledWorker, as_completed
+
+    futures = [client.submit(function, *job, key=task_key(name), pure=False) for job, name in zip(jobs, names)]
+    index = {future.key: k for k, future in enumerate(futures)}
+    results = [None] * len(futures)
+    for future in as_completed(futures):
+        k = index[future.key]
+        if future.status != "finished":
+            error = future.exception()
+            client.cancel(futures)
+            if isinstance(error, KilledWorker):
+                raise InputError(f"{names[k]}: its worker process died repeatedly (out of memory?); what it"
+                                 " wrote up to its last checkpoint is kept") from None
+            if isinstance(error, InputError):
+                raise InputError(f"{names[k]}: {error}") from None
+            raise RuntimeError(f"{names[k]} failed: {type(error).__name__}: {error}") from error
+        results[k] = future.result()
+        if on_done is not None:
+            on_done(k, results[k])
+    return results
 
 
 def run_shards(run_dir: Path, workers: int | None = None, scheduler: str | None = None,
@@ -203,14 +288,8 @@ def run_shards(run_dir: Path, workers: int | None = None, scheduler: str | None 
             jobs.append((str(path), override.get("samples"), override.get("seconds")))
     if not jobs:
         return []
-    client, cluster = _client(workers, scheduler)
-    try:
-        futures = [client.submit(sample_shard, *job, pure=False) for job in jobs]
-        return client.gather(futures)
-    finally:
-        client.close()
-        if cluster is not None:
-            cluster.close()
+    with dask_client(workers, scheduler) as client:
+        return run_tasks(client, sample_shard, jobs, [f"shard-{Path(job[0]).name}" for job in jobs])
 
 
 def _done(path: Path, budget: dict) -> bool:
