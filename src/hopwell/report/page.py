@@ -41,15 +41,23 @@ def _torsion_section(summary: dict) -> str:
 
 
 # Fits a 1280-pixel window and a phone: images shrink to the column, tables scroll in their box,
-# plots and the structure viewer wrap onto the next line when the window is narrow.
+# plots and the structure viewer wrap onto the next line when the window is narrow; the viewer
+# keeps a 4:3 box at any width, and a phone gets tighter padding.
 _STYLE = """body{font-family:sans-serif;max-width:1200px;margin:1em auto;padding:0 12px;color:#222;
 overflow-wrap:anywhere}img{max-width:100%;height:auto}[hidden]{display:none!important}
 .scroll{overflow-x:auto;max-width:100%}table{border-collapse:collapse}
 td,th{border:1px solid #ccc;padding:4px 10px;text-align:right;overflow-wrap:normal}td{white-space:nowrap}
 td:first-child,th:first-child{text-align:left}.verdict{font-size:1.4em}
 .plots,.structures{display:flex;flex-wrap:wrap;gap:1em;align-items:flex-start}
-.plots p,figure{margin:0}.viewer{position:relative;overflow:hidden;width:min(100%,560px);height:420px;border:1px solid #ccc}
-fieldset label{display:block;margin:2px 0}.swatch{display:inline-block;width:.9em;height:.9em;margin:0 .4em}"""
+.plots p,figure{margin:0}.structures>*{min-width:0;max-width:100%}
+.viewer{position:relative;overflow:hidden;width:min(100%,560px);aspect-ratio:4/3;border:1px solid #ccc}
+fieldset{margin:0}fieldset label{display:block;margin:2px 0}.swatch{display:inline-block;width:.9em;height:.9em;margin:0 .4em}
+@media (max-width:600px){body{padding:0 8px;font-size:15px}td,th{padding:3px 6px}h1{font-size:1.6em}}"""
+
+
+def _kj(value: float) -> str:
+    """An energy to two decimals, without the "-0.00" that rounding a tiny negative gives."""
+    return "0.00" if round(value, 2) == 0 else f"{value:.2f}"
 
 
 def _scroll(table: str) -> str:
@@ -75,7 +83,7 @@ def html_page(summary: dict, structures: dict | None = None) -> str:
     rows = "".join(
         f"<tr><td>{html.escape(s['name'])}</td><td>{100 * s['population']:.1f}</td>"
         f"<td>{100 * s['ci95'][0]:.1f} - {100 * s['ci95'][1]:.1f}</td>"
-        f"<td>{s['dG_kJ_per_mol']:.2f}</td><td>{s['dG_ci95'][0]:.2f} - {s['dG_ci95'][1]:.2f}</td></tr>"
+        f"<td>{_kj(s['dG_kJ_per_mol'])}</td><td>{_kj(s['dG_ci95'][0])} - {_kj(s['dG_ci95'][1])}</td></tr>"
         for s in summary["states"]
     )
     acceptance = summary["flow_acceptance_production"]
