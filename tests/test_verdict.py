@@ -22,6 +22,7 @@ REASONS = {
     "transitions": "transitions between states",
     "block": "shorter than one bootstrap block",
     "ess": "effective sample size",
+    "one state": "every sample is in state",
 }
 
 
@@ -137,6 +138,19 @@ def test_named_state_never_visited_is_a_warning(named):
     expected = ("never visited: s3 (their populations are upper bounds only; seed a structure"
                 " there if one is known)")
     assert verdict.warnings == ([expected] if named else [])
+
+
+def test_every_sample_in_one_state():
+    # Four walkers that never leave state 0 of a two-state model (an amide's trans with cis never
+    # reached): only this rule fires; the same series with one visit to state 1 does not fire it.
+    series = np.zeros((4, 2000), dtype=int)
+    verdict, _ = verdict_of(series, 2)
+    assert rules_fired(verdict) == {"one state"}
+    assert verdict.reasons == ["every sample is in state s0: the other 1 state(s) were never visited,"
+                               " so nothing bounds them"]
+    series[2, 1000] = 1
+    verdict, _ = verdict_of(series, 2)
+    assert not any(r.startswith("every sample") for r in verdict.reasons)
 
 
 def importance_like(estimate, shift=0.0, effective_samples=5000.0, proposals=10000):

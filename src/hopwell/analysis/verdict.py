@@ -98,6 +98,13 @@ def judge(series: np.ndarray, estimate: stats.PopulationResult, names: list[str]
                            " inefficiency): the intervals are not defined")
     if estimate.ess < MIN_ESS:
         out.reasons.append(f"effective sample size {estimate.ess:.0f} < {MIN_ESS}")
+    visited = [s for s in range(n_states) if out.walkers_seen[s] > 0]
+    if n_states > 1 and len(visited) == 1:
+        # Every sample in one state: its interval collapses to [100%, 100%] and no other rule can
+        # fire, yet the model has other states (an amide's cis, a named region) that the run
+        # never reached. Measured by bench.calibration: such runs were judged converged.
+        out.reasons.append(f"every sample is in state {names[visited[0]]}: the other"
+                           f" {n_states - 1} state(s) were never visited, so nothing bounds them")
     unseen = [names[s] for s in range(n_states) if named[s] and out.walkers_seen[s] == 0]
     if unseen:
         out.warnings.append(f"never visited: {', '.join(unseen)} (their populations are upper bounds"
