@@ -11,6 +11,7 @@ import math
 import pytest
 
 from hopwell.bench import calibration as cal
+from hopwell.bench import chain
 
 
 def state(name, low, high, truth, population=None):
@@ -110,17 +111,11 @@ def test_append_record_keeps_earlier_lines(tmp_path):
 
 
 def test_chain_truth_sums_to_one_and_orders_the_wells():
-    # scipy.integrate.quad of exp(-V/kT) (the copy of tests/chain_systems.exact_populations):
+    # scipy.integrate.quad of exp(-V/kT) (hopwell.bench.chain.exact_populations):
     # the 180 well is deepest (B cos phi > 0 lowers it), -60 shallower than 60 (C sin phi).
-    p = cal.chain_exact_populations()
+    p = chain.exact_populations()
     assert p.sum() == pytest.approx(1.0, abs=1e-12)
     assert p[0] < p[1] < p[2]
-
-
-def test_chain_copy_matches_the_test_chain():
-    chain_systems = pytest.importorskip("chain_systems")
-    assert cal.chain_exact_populations() == pytest.approx(chain_systems.exact_populations(), abs=1e-12)
-    assert cal.chain_positions_nm(75.0) == pytest.approx(chain_systems.chain_positions_nm(75.0))
 
 
 @pytest.mark.parametrize("argv, message", [

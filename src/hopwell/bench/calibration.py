@@ -8,11 +8,10 @@ a restart with the same ``--out`` skips the runs already there.
 
 Systems, and where their truth comes from:
 
-* ``chain``: the four-atom chain of ``tests/chain_systems.py`` (copied below: the package cannot
-  import ``tests/``), three walkers seeded one per well. Its torsion marginal is exactly
-  exp(-V(phi)/kT) (the density factorizes in internal coordinates; see the docstring of
-  ``tests/chain_systems.exact_populations``), so the well populations are ratios of
-  scipy.integrate.quad integrals, independent of hopwell.
+* ``chain``: the four-atom chain of :mod:`hopwell.bench.chain` (the tests' chain), three walkers
+  seeded one per well. Its torsion marginal is exactly exp(-V(phi)/kT) (the density factorizes
+  in internal coordinates; see :func:`hopwell.bench.chain.exact_populations`), so the well
+  populations are ratios of scipy.integrate.quad integrals, independent of hopwell's sampling.
 * ``chain-one-well``: the same chain, three walkers all seeded in the -60 well (the flow and the
   basin probes must find the other two).
 * ``chain-one-well-md``: the same one-well seeding with the local segments alone
@@ -48,115 +47,14 @@ from pathlib import Path
 import numpy as np
 
 from hopwell.atomic import atomic_write_bytes
-from hopwell.bench import print_table
+from hopwell.bench import chain, print_table
 
 REPOSITORY = Path(__file__).resolve().parents[3]
 SYSTEMS_DIR = REPOSITORY / "systems"
 NUMBER = re.compile(r"(?<![A-Za-z0-9.])[0-9]+(\.[0-9]+)?")  # grouping reasons that differ in figures only
 SYSTEMS = ("chain", "chain-one-well", "chain-one-well-md", "nma-trans", "ace-one-seed")
 
-# ---------------------------------------------------------------------------------------------
-# The four-atom chain, copied from tests/chain_systems.py (the minimum needed here); the truth
-# is its exact_populations: scipy.integrate.quad of exp(-V/kT) over each well.
-CHAIN_TEMPERATURE_K = 300.0
-CHAIN_MASS_DA = 12.0
-CHAIN_BOND_NM = 0.153
-CHAIN_BOND_K = 2.0e5  # kJ/mol/nm^2
-CHAIN_ANGLE_RAD = math.radians(110.0)
-CHAIN_ANGLE_K = 500.0  # kJ/mol/rad^2
-CHAIN_WELLS = ("minus60", "plus60", "anti")
-
-
-def chain_kt_kj() -> float:
-    """kT in kJ/mol at the chain's temperature, from the CODATA gas constant (scipy.constants)."""
-    from scipy import constants
-
-    return constants.R * CHAIN_TEMPERATURE_K / 1000.0
-
-
-def chain_torsion_coefficients_kj() -> tuple[float, float, float]:
-    """A, B, C of V(phi) = A (1 + cos 3 phi) + B cos phi + C sin phi (tests/chain_systems.py)."""
-    kt = chain_kt_kj()
-    return 6.0 * kt, 0.48 * kt, -0.24 * kt
-
-
-def chain_torsion_energy_kj(phi_rad):
-    """The chain's torsion potential V(phi) in kJ/mol."""
-    a, b, c = chain_torsion_coefficients_kj()
-    phi = np.asarray(phi_rad, dtype=float)
-    return a * (1.0 + np.cos(3.0 * phi)) + b * np.cos(phi) + c * np.sin(phi)
-
-
-def chain_system():
-    """OpenMM System of the chain: harmonic bonds and angles and the torsion V(phi), nothing else."""
-    import openmm
-
-    a, b, c = chain_torsion_coefficients_kj()
-    system = openmm.System()
-    for _ in range(4):
-        system.addParticle(CHAIN_MASS_DA)
-    bonds = openmm.CustomBondForce(f"0.5*{CHAIN_BOND_K}*(r-{CHAIN_BOND_NM})^2")
-    for i in range(3):
-        bonds.addBond(i, i + 1, [])
-    angles = openmm.CustomAngleForce(f"0.5*{CHAIN_ANGLE_K}*(theta-{CHAIN_ANGLE_RAD})^2")
-    angles.addAngle(0, 1, 2, [])
-    angles.addAngle(1, 2, 3, [])
-    torsion = openmm.CustomTorsionForce(f"{a}*(1+cos(3*theta)) + {b}*cos(theta) + {c}*sin(theta)")
-    torsion.addTorsion(0, 1, 2, 3, [])
-    for force in (bonds, angles, torsion):
-        system.addForce(force)
-    return system
-
-
-def chain_mol():
-    """Four carbons in a chain, single bonds, no hydrogens at all."""
-    from rdkit import Chem
-
-    rw = Chem.RWMol()
-    for _ in range(4):
-        atom = Chem.Atom(6)
-        atom.SetNoImplicit(True)
-        atom.SetNumExplicitHs(0)
-        rw.AddAtom(atom)
-    for i in range(3):
-        rw.AddBond(i, i + 1, Chem.BondType.SINGLE)
-    mol = rw.GetMol()
-    mol.UpdatePropertyCache(strict=False)
-    return mol
-
-
-def chain_positions_nm(phi_deg: float) -> np.ndarray:
-    """Chain at its bond length and angle with dihedral 0-1-2-3 equal to ``phi_deg``, (4, 3) nm."""
-    phi = math.radians(phi_deg)
-    s, c = math.sin(math.pi - CHAIN_ANGLE_RAD), math.cos(math.pi - CHAIN_ANGLE_RAD)
-    x1 = np.zeros(3)
-    x2 = np.array([CHAIN_BOND_NM, 0.0, 0.0])
-    x0 = x1 + CHAIN_BOND_NM * np.array([-c, s, 0.0])
-    x3 = x2 + CHAIN_BOND_NM * np.array([c, s * math.cos(phi), s * math.sin(phi)])
-    return np.stack([x0, x1, x2, x3])
-
-
-def chain_well_edges_rad() -> np.ndarray:
-    """The three maxima of V (bounded scalar search by scipy.optimize near 0 and +-120 degrees)."""
-    from scipy import optimize
-
-    edges = [optimize.minimize_scalar(lambda p: -chain_torsion_energy_kj(p), bounds=(x - 0.5, x + 0.5),
-                                      method="bounded", options={"xatol": 1e-10}).x
-             for x in np.radians([-120.0, 0.0, 120.0])]
-    return np.array(edges)
-
-
-def chain_exact_populations() -> np.ndarray:
-    """Exact well populations (-60, 60, 180) by scipy.integrate.quad of exp(-V/kT)."""
-    from scipy import integrate
-
-    edges = chain_well_edges_rad()
-    v_min = chain_torsion_energy_kj(math.pi)
-    kt = chain_kt_kj()
-    bounds = [(edges[0], edges[1]), (edges[1], edges[2]), (edges[2], edges[0] + 2.0 * math.pi)]
-    z = np.array([integrate.quad(lambda p: math.exp(-(chain_torsion_energy_kj(p) - v_min) / kt), lo, hi,
-                                 epsabs=0.0, epsrel=1e-12, limit=200)[0] for lo, hi in bounds])
-    return z / z.sum()
+CHAIN_WELLS = ("minus60", "plus60", "anti")  # the order of chain.exact_populations
 
 
 def chain_files(folder: Path) -> tuple[dict, Path]:
@@ -164,9 +62,9 @@ def chain_files(folder: Path) -> tuple[dict, Path]:
     import mdtraj
     from rdkit import Chem
 
-    mol = chain_mol()
+    mol = chain.chain_mol()
     conformer = Chem.Conformer(4)
-    for i, row in enumerate(chain_positions_nm(180.0) * 10.0):  # SDF keeps Angstrom
+    for i, row in enumerate(chain.chain_positions_nm(180.0) * 10.0):  # SDF keeps Angstrom
         conformer.SetAtomPosition(i, row.tolist())
     mol.AddConformer(conformer)
     topology = mdtraj.Topology()
@@ -175,8 +73,8 @@ def chain_files(folder: Path) -> tuple[dict, Path]:
     for a, b in zip(atoms, atoms[1:]):
         topology.add_bond(a, b)
     pdb = folder / "chain.pdb"
-    mdtraj.Trajectory(chain_positions_nm(180.0)[None], topology).save_pdb(str(pdb))
-    edges = np.degrees(chain_well_edges_rad())
+    mdtraj.Trajectory(chain.chain_positions_nm(180.0)[None], topology).save_pdb(str(pdb))
+    edges = np.degrees(chain.well_edges_rad())
     ranges = [(edges[0], edges[1]), (edges[1], edges[2]), (edges[2], edges[0])]  # the last wraps
     states = folder / "states.toml"
     states.write_text("".join(
@@ -196,7 +94,7 @@ def chain_settings(seed: int, seconds: float, method: str):
 
     flow = method == "flow"
     return SamplerSettings(
-        temperature_K=CHAIN_TEMPERATURE_K, method=method, langevin_steps=50, proposals_per_cycle=16,
+        temperature_K=chain.TEMPERATURE_K, method=method, langevin_steps=50, proposals_per_cycle=16,
         single_moves_per_cycle=0, training_cycles=10**9 if flow else 0,
         training_seconds=0.3 * seconds if flow else None, fit_every=4, fit_steps=40, flow_layers=2,
         flow_hidden=16, cycles_per_chunk=20, seed=seed)
@@ -212,11 +110,11 @@ def run_chain(folder: Path, seed: int, seconds: float, one_well: bool, method: s
     files, states_file = chain_files(folder)
     store = RunStore.create(folder / "run", {"sampler": asdict(settings)}, files)
     angles = (-60.0, -60.0, -60.0) if one_well else (-60.0, 60.0, 180.0)
-    seeds = np.stack([chain_positions_nm(p) for p in angles])
-    Sampler(chain_mol(), chain_system(), seeds, settings, store, n_walkers=3, platform="Reference").run(
+    seeds = np.stack([chain.chain_positions_nm(p) for p in angles])
+    Sampler(chain.chain_mol(), chain.chain_system(), seeds, settings, store, n_walkers=3, platform="Reference").run(
         Budget(seconds=seconds))
     summary = analyse(store.path, rng_seed=seed, states_file=states_file)
-    truth = dict(zip(CHAIN_WELLS, chain_exact_populations()))
+    truth = dict(zip(CHAIN_WELLS, chain.exact_populations()))
     return summary_record(summary, truth)
 
 
