@@ -44,6 +44,24 @@ def assign_wells(phi_rad: np.ndarray) -> np.ndarray:
                     np.where((phi >= edges[1]) & (phi < edges[2]), 1, 2)).astype(np.int64)
 
 
+#: Checking three wells at once against their 95% intervals fails a perfect sampler in about one
+#: run in ten (three comparisons, each missing 5% of the time), and every change to the random
+#: streams draws again. Family-wise checks therefore stretch each interval about its estimate
+#: from 1.96 to 3 standard errors (two-sided 0.27% per well, under 1% for three by the
+#: Bonferroni bound). Measured on the one-well flow run of tests/test_sampler_exact.py over
+#: seeds 1-10 (with and without darts): the -60 well's estimates scattered about the quadrature
+#: value with a spread close to the standard error the intervals imply.
+FAMILY_STRETCH = 3.0 / 1.96
+
+
+def family_covers(p, lower, upper, exact) -> bool:
+    """Whether every ``exact`` population lies in its 95% interval ``[lower, upper]`` stretched
+    by FAMILY_STRETCH about the estimate ``p`` (arrays over the states)."""
+    p = np.asarray(p)
+    return bool(np.all((p - FAMILY_STRETCH * (p - np.asarray(lower)) <= exact)
+                       & (exact <= p + FAMILY_STRETCH * (np.asarray(upper) - p))))
+
+
 def new_store(path, settings) -> RunStore:
     """An empty run directory holding the settings (the sampler needs no other files)."""
     return RunStore.create(path, {"sampler": asdict(settings)}, {})

