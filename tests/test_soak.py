@@ -35,7 +35,7 @@ def test_agreement_takes_the_worst_state_in_standard_errors():
     a = {"x": (0.50, 0.4804, 0.5196), "y": (0.50, 0.4804, 0.5196)}
     b = {"x": (0.51, 0.4904, 0.5296), "y": (0.46, 0.4404, 0.4796), "z": (0.03, 0.0, 0.05)}
     diff, allowed = soak.agreement(a, b)
-    assert diff == pytest.approx(0.04)  # y, 2.8 standard errors, beats x (0.7) and z (1.2)
+    assert diff == pytest.approx(0.04)  # y, 2.8 standard errors, beats x (0.7) and z (2.4)
     assert allowed == pytest.approx(soak.ALLOWANCE_SE * 0.01 * math.sqrt(2.0))
 
 

@@ -165,9 +165,13 @@ class StateModel:
         """State index of each sample from its dihedrals, shape ``(n, n_torsions)``."""
         if self.kind == "backbone":
             return backbone_state(np.degrees(dihedrals_rad[:, 0]), np.degrees(dihedrals_rad[:, 1]))
-        wells = _columns(dihedrals_rad, self.edges, self.torsions, self.rings)
         other = len(self.names) - 1
-        return np.array([self.combos.get(tuple(w), other) for w in wells], dtype=int)
+        return np.array([self.combos.get(tuple(w), other) for w in self.wells(dihedrals_rad)], dtype=int)
+
+    def wells(self, dihedrals_rad: np.ndarray) -> np.ndarray:
+        """Per sample, the well index of each bond torsion and the code of each ring,
+        ``(n, n_columns)`` (torsion kind only): the finest partition the states are made of."""
+        return _columns(dihedrals_rad, self.edges, self.torsions, self.rings)
 
 
 def backbone_model(topology: md.Topology) -> StateModel | None:

@@ -55,6 +55,25 @@ fieldset{margin:0}fieldset label{display:block;margin:2px 0}.swatch{display:inli
 @media (max-width:600px){body{padding:0 8px;font-size:15px}td,th{padding:3px 6px}h1{font-size:1.6em}}"""
 
 
+def pose_text(pose: dict) -> str:
+    """One sentence on the pose: its population with interval and its conformational cost."""
+    def cost(x):
+        return "unbounded" if x is None else f"{x:.1f}"
+
+    held = ", ".join(pose["states"]) or "no state of this run"
+    low, high = pose["dG_ci95_kJ_per_mol"]
+    return (f"pose {pose['file']}: {100 * pose['population']:.2f}% of the ensemble lies in its torsion wells"
+            f" (95% {100 * pose['ci95'][0]:.2f}-{100 * pose['ci95'][1]:.2f}%; state {held}); cost of holding"
+            f" it there -kT ln p = {cost(pose['dG_kJ_per_mol'])} kJ/mol (95% {cost(low)} to {cost(high)})")
+
+
+def _pose_section(summary: dict) -> str:
+    """The pose's population and cost (``report --pose``); empty without a pose."""
+    if "pose" not in summary:
+        return ""
+    return f'<h2>Pose</h2>\n<p id="pose">{html.escape(pose_text(summary["pose"]))}</p>\n'
+
+
 def _kj(value: float) -> str:
     """An energy to two decimals, without the "-0.00" that rounding a tiny negative gives."""
     return "0.00" if round(value, 2) == 0 else f"{value:.2f}"
@@ -108,7 +127,7 @@ flow acceptance {"-" if acceptance is None else f"{100 * acceptance:.1f}%"}; ove
 {", ".join(f"{k.replace('_', ' ')} {100 * v:.1f}%" for k, v in summary["move_acceptance"].items()
            if isinstance(v, float)) or "-"}.</p>
 {_scroll(populations)}
-{"".join(f"<p>{html.escape(k)}: {v['mean']:.2f} (95% {v['ci95_low']:.2f} - {v['ci95_high']:.2f})</p>"
+{_pose_section(summary)}{"".join(f"<p>{html.escape(k)}: {v['mean']:.2f} (95% {v['ci95_low']:.2f} - {v['ci95_high']:.2f})</p>"
          for k, v in summary.get("observables", {}).items())}
 {_torsion_section(summary)}{structure_section(structures or {}, summary["states"])}<h2>Walkers</h2>
 {_scroll(walkers)}
@@ -133,6 +152,8 @@ def format_table(summary: dict) -> str:
     for s in summary["states"]:
         lines.append(f"{s['name']:<24} {100 * s['population']:>9.1f}% "
                      f"{100 * s['ci95'][0]:>7.1f}-{100 * s['ci95'][1]:<6.1f}% {s['dG_kJ_per_mol']:>10.2f}")
+    if "pose" in summary:
+        lines.append(pose_text(summary["pose"]))
     for name, value in summary.get("observables", {}).items():
         lines.append(f"{name}: {value['mean']:.2f} ({value['ci95_low']:.2f}-{value['ci95_high']:.2f})")
     if "reweighted" in summary:
