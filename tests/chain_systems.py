@@ -14,24 +14,24 @@ from dataclasses import asdict
 import numpy as np
 
 from hopwell.bench.chain import (  # noqa: F401 (re-exported for the tests)
-    TEMPERATURE_K,
+    ANGLE_K,
+    ANGLE_RAD,
+    BOND_K,
+    BOND_NM,
     KT_KJ,
     MASS_DA,
-    BOND_NM,
-    BOND_K,
-    ANGLE_RAD,
-    ANGLE_K,
+    TEMPERATURE_K,
     TORSION_A_KJ,
     TORSION_B_KJ,
     TORSION_C_KJ,
     WELL_CENTRES_DEG,
-    torsion_energy_kj,
-    chain_system,
     chain_mol,
     chain_positions_nm,
+    chain_system,
     dihedrals_rad,
-    well_edges_rad,
     exact_populations,
+    torsion_energy_kj,
+    well_edges_rad,
 )
 from hopwell.sampling.store import RunStore
 

@@ -18,7 +18,13 @@ from rdkit.Chem import AllChem, rdMolTransforms
 from scipy import constants
 
 from hopwell.analysis import states as st
-from hopwell.analysis.pose import near_pose, pose_images, pose_population, pose_states, read_pose
+from hopwell.analysis.pose import (
+    near_pose,
+    pose_images,
+    pose_population,
+    pose_states,
+    read_pose,
+)
 from hopwell.errors import InputError
 
 
