@@ -1,7 +1,9 @@
 """The ``hopwell`` command line.
 
-Exit codes: 0 done; 2 bad input or usage (one line on stderr, never a traceback); 1 internal
-error (one line naming the log file that holds the traceback).
+Exit codes: 0 done; 2 bad input or usage, a damaged run directory that cannot be recovered, or
+a full disk (one line on stderr, never a traceback); 1 internal error (one line naming the log
+file that holds the traceback). Damage that was recovered from is reported as
+``hopwell: warning: ...`` lines, and the command goes on.
 """
 
 from __future__ import annotations
@@ -18,9 +20,15 @@ import click
 
 from hopwell.atomic import atomic_write_bytes
 from hopwell.errors import InputError
+from hopwell.sampling.store import NO_SPACE
 
 EXIT_INPUT = 2
 EXIT_INTERNAL = 1
+
+
+def _warn(message: str) -> None:
+    """One warning line on stderr: damage found and recovered from."""
+    click.echo(f"hopwell: warning: {message}", err=True)
 
 
 def _fail_cleanly(fn):
@@ -38,15 +46,25 @@ def _fail_cleanly(fn):
             sys.exit(130)
         except (click.exceptions.Exit, click.ClickException, SystemExit):
             raise
+        except OSError as exc:  # a full disk outside a run's own writes (a report's files, say)
+            if exc.errno not in NO_SPACE:
+                _internal_error()
+            where = f" while writing {exc.filename}" if exc.filename else ""
+            click.echo(f"hopwell: error: no space left on device{where}; free some space and run the"
+                       " command again", err=True)
+            sys.exit(EXIT_INPUT)
         except Exception:  # the one place that catches everything: report, keep the traceback
-            with tempfile.NamedTemporaryFile(
-                "w", prefix="hopwell-error-", suffix=".log", delete=False
-            ) as log:
-                traceback.print_exc(file=log)
-            click.echo(f"hopwell: internal error; the traceback is in {log.name}", err=True)
-            sys.exit(EXIT_INTERNAL)
+            _internal_error()
 
     return wrapper
+
+
+def _internal_error() -> None:
+    """Keep the traceback of the exception being handled in a log file; exit 1 naming it."""
+    with tempfile.NamedTemporaryFile("w", prefix="hopwell-error-", suffix=".log", delete=False) as log:
+        traceback.print_exc(file=log)
+    click.echo(f"hopwell: internal error; the traceback is in {log.name}", err=True)
+    sys.exit(EXIT_INTERNAL)
 
 
 def _builder_options(fn):
@@ -413,10 +431,11 @@ def resume(run_dir, hours, samples, workers, scheduler):
 
     if n_planned(Path(run_dir)) is not None:  # sharded: train if unfinished, then the unfinished shards
         new = None if hours is None and samples is None else budget
-        done = train_then_shard(Path(run_dir), workers or None, scheduler, new, _progress_printer(budget))
+        done = train_then_shard(Path(run_dir), workers or None, scheduler, new, _progress_printer(budget),
+                                notice=_warn)
         click.echo(f"\n{len(done)} shard(s) sampled to their budget in {run_dir}", err=True)
         return
-    sampler = resume_run(Path(run_dir), budget, progress=_progress_printer(budget))
+    sampler = resume_run(Path(run_dir), budget, progress=_progress_printer(budget), notice=_warn)
     click.echo(f"\nrun finished at cycle {sampler.cycle}: {sampler.production_samples} production"
                f" samples in {run_dir}", err=True)
 
@@ -519,6 +538,8 @@ def report(run_dir, as_json, reweight_temperature, reweight_solvent, reweight_fo
     reweight = {k: v for k, v in (("temperature_K", reweight_temperature), ("solvent", reweight_solvent),
                                   ("forcefield", reweight_forcefield)) if v is not None}
     summary = analyse(Path(run_dir), reweight=reweight or None, states_file=states_file)
+    for line in summary["damage"]:
+        _warn(line)
     page = write_report(Path(run_dir), summary)
     if as_json:
         click.echo(json.dumps(public(summary), indent=2))
@@ -543,13 +564,15 @@ def status(run_dir, as_json):
     from hopwell.sampling.shards import n_planned, shard_status
 
     info = run_status(Path(run_dir))
+    for line in info["warnings"]:
+        _warn(line)
     if n_planned(Path(run_dir)) is not None:
         info["shards"] = shard_status(Path(run_dir))
     if as_json:
         click.echo(json.dumps(info, indent=2))
         return
     for key, value in info.items():
-        if key == "shards":
+        if key in ("shards", "warnings"):
             continue
         if isinstance(value, float):
             value = f"{value:.3f}"

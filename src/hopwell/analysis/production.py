@@ -1,7 +1,9 @@
 """One pass over a run store: the production series and the acceptance counts a report needs.
 
 The store is read chunk by chunk; only dihedrals, energies and bookkeeping are kept in memory
-(never all positions).
+(never all positions). A chunk that does not load (cut short, zeroed, holding pickles) is
+skipped and named in ``Production.damaged_chunks``; every intact chunk is read. A walker's
+series then runs on across the gap, which a lost chunk leaves in every walker alike.
 """
 
 from __future__ import annotations
@@ -14,6 +16,7 @@ import numpy as np
 
 from hopwell.analysis import states as st
 from hopwell.errors import InputError
+from hopwell.sampling.checkpoint import newest_readable
 from hopwell.sampling.store import MOVE_FLOW, RunStore
 
 ACCEPTANCE_WINDOWS = 50  # cycle windows over the whole run in the acceptance-over-time table
@@ -48,6 +51,7 @@ class Production:
     proposal_block: np.ndarray  # (m,) one block per (walker, cycle)
     flow_accepted: int
     acceptance: CycleCounts  # flow acceptance per cycle, training and production
+    damaged_chunks: list  # a DamagedFile (path, reason) for each chunk that did not load and was skipped
 
 
 def _per_cycle(cycles: np.ndarray, flags: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -79,7 +83,8 @@ def gather(store: RunStore, topology: md.Topology, torsions, kT: float) -> Produ
     accepted = 0
     block_tallies, proposal_tallies, production_cycles = [], [], []
     n_cycles = 0
-    for chunk in store.iter_chunks():
+    damaged = []
+    for chunk in store.iter_chunks(damaged=damaged):
         keep = chunk["state_production"].astype(bool)
         n_cycles = max(n_cycles, 1 + int(chunk["state_cycle"].max(initial=-1)))
         flow = chunk["state_move"] == MOVE_FLOW
@@ -99,11 +104,12 @@ def gather(store: RunStore, topology: md.Topology, torsions, kT: float) -> Produ
             parts["pb"].append(chunk["proposal_cycle"] * 1_000_000 + chunk["proposal_walker"])
             proposal_tallies.append(_per_cycle(chunk["proposal_cycle"], chunk["proposal_accepted"]))
     if not parts["e"]:
-        raise InputError(f"{store.path}: no production samples yet; let the run go on or resume it")
+        lost = f" ({len(damaged)} damaged chunk(s) skipped)" if damaged else ""
+        raise InputError(f"{store.path}: no production samples yet{lost}; let the run go on or resume it")
     if not parts["pd"]:
         parts["pd"], parts["pw"], parts["pb"] = [np.zeros((0, len(torsions)))], [np.zeros(0)], [np.zeros(0, int)]
     return Production(*(np.concatenate(parts[k]) for k in ("d", "e", "w", "o", "pd", "pw", "pb")), accepted,
-                      _cycle_counts(n_cycles, block_tallies, proposal_tallies, production_cycles))
+                      _cycle_counts(n_cycles, block_tallies, proposal_tallies, production_cycles), damaged)
 
 
 def _fraction(numerator: int, denominator: int) -> float | None:
@@ -166,9 +172,32 @@ MOVE_COUNTERS = {"training": "flow_training", "production": "flow_production", "
                  "dart": "dart"}  # checkpoint key: report label
 
 
+def readable_state(store: RunStore) -> dict | None:
+    """The checkpoint a report reads counters from: the newest whose arrays load (:func:`newest_readable`).
+
+    None before the first checkpoint, and when neither checkpoint loads (the report then goes
+    without the checkpoint's counters; :func:`checkpoint_warnings` says so).
+    """
+    return newest_readable(store.path)[0]
+
+
+def checkpoint_warnings(store: RunStore) -> list[str]:
+    """One line for each damaged checkpoint of a run and its shards, saying what the report read instead."""
+    from hopwell.sampling.shards import shard_stores
+
+    lines = []
+    for run in [store] + [shard for shard, _ in shard_stores(store.path)]:
+        state, passed_over = newest_readable(run.path)
+        if passed_over:
+            lines.append("; ".join(passed_over) + ("; the report reads the previous checkpoint's counters"
+                                                   if state is not None else
+                                                   ": the report has no move counters from a checkpoint"))
+    return lines
+
+
 def _saved_counters(store: RunStore) -> dict:
     """The checkpoint's ``stats`` JSON (every move's counters); empty before the first checkpoint."""
-    state = store.read_state()
+    state = readable_state(store)
     return json.loads(str(state["stats"])) if state is not None else {}
 
 
@@ -223,10 +252,13 @@ def _add_counts(parts: list[CycleCounts]) -> CycleCounts:
                                                             "proposals_accepted")), total("production", bool))
 
 
-def _training_counts(store: RunStore) -> CycleCounts:
-    """Flow-block counts per cycle of a run's own chunks (a sharded run's training)."""
+def _training_counts(store: RunStore, damaged: list) -> CycleCounts:
+    """Flow-block counts per cycle of a run's own chunks (a sharded run's training).
+
+    A DamagedFile for each chunk that does not load is appended to ``damaged``.
+    """
     tallies, n_cycles = [], 0
-    for chunk in store.iter_chunks():
+    for chunk in store.iter_chunks(damaged=damaged):
         flow = chunk["state_move"] == MOVE_FLOW
         n_cycles = max(n_cycles, 1 + int(chunk["state_cycle"].max(initial=-1)))
         tallies.append(_per_cycle(chunk["state_cycle"][flow], chunk["state_accepted"][flow]))
@@ -255,5 +287,8 @@ def gather_run(store: RunStore, topology: md.Topology, torsions, kT: float) -> P
         "proposal_log_weight": np.concatenate([p.proposal_log_weight for p, _ in parts]),
         "proposal_block": np.concatenate([p.proposal_block + first for p, first in parts]),  # cycle * 1e6 + walker
     }
+    damaged = []
+    training = _training_counts(store, damaged)
     return Production(**arrays, flow_accepted=sum(p.flow_accepted for p, _ in parts),
-                      acceptance=_add_counts([_training_counts(store)] + [p.acceptance for p, _ in parts]))
+                      acceptance=_add_counts([training] + [p.acceptance for p, _ in parts]),
+                      damaged_chunks=damaged + [path for p, _ in parts for path in p.damaged_chunks])

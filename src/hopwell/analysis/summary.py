@@ -2,6 +2,11 @@
 
 Rendering (HTML, plots, exported structures) lives in :mod:`hopwell.report`; this module only
 computes numbers.
+
+A damaged run directory is read as far as it can be: damaged chunks are skipped, a damaged
+checkpoint gives way to the previous one (or to none: the move counters are then missing), and
+a small molecule's missing topology.pdb is rebuilt (:mod:`hopwell.sampling.recovery`). Each
+such finding is one line in ``summary["damage"]`` and among the warnings.
 """
 
 from __future__ import annotations
@@ -21,8 +26,10 @@ from hopwell.analysis.observables import KARPLUS_HN_HA, j3_hn_ha, series_mean
 from hopwell.analysis.production import (
     Production,
     acceptance_over_time,
+    checkpoint_warnings,
     gather_run,
     move_acceptance,
+    readable_state,
     walker_series,
 )
 from hopwell.analysis.reweight import (
@@ -31,6 +38,8 @@ from hopwell.analysis.reweight import (
     temperature_log_weights,
 )
 from hopwell.analysis.verdict import judge
+from hopwell.sampling.files import read_molecules
+from hopwell.sampling.recovery import ensure_topology
 from hopwell.sampling.shards import shard_stores
 from hopwell.sampling.store import RunStore
 from hopwell.systems.energy import kT_kj
@@ -68,7 +77,8 @@ def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict
     """
     store = RunStore.open(Path(run_dir))
     config = store.config()
-    mol = next(iter(Chem.SDMolSupplier(str(store.path / "molecule.sdf"), removeHs=False)))
+    mol = read_molecules(store.path / "molecule.sdf")[0]
+    rebuilt = ensure_topology(store)
     topology = md.load_topology(str(store.path / "topology.pdb"))
     model, torsions = (model, None) if model is not None else _state_model(store, mol, topology, states_file)
     temperature = float(config["sampler"]["temperature_K"])
@@ -89,11 +99,14 @@ def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict
     local_move = local_move_counts(store)
     found, found_positions_nm = found_basins(store)
     verdict = judge(series, pops, model.names, named, importance, local_move, found)
+    damage = ([rebuilt] if rebuilt else []) + checkpoint_warnings(store) + [
+        f"{exc}: skipped, its records are not in this report" for exc in production.damaged_chunks]
     summary = {
         "temperature_K": temperature,
         "verdict": verdict.label,
         "reasons": verdict.reasons,
-        "warnings": verdict.warnings,
+        "warnings": damage + verdict.warnings,
+        "damage": damage,
         "state_model": model.kind,
         "states": [
             {
@@ -162,7 +175,7 @@ def local_move_counts(store: RunStore) -> dict:
     keys = {"segments": "proposed", "rolled_back": "rolled_back", "states_failing_guard": "outside_guard"}
 
     def counts(run: RunStore) -> dict:
-        state = run.read_state()
+        state = readable_state(run)
         saved = json.loads(str(state["stats"])).get("langevin", {}) if state is not None else {}
         return {name: int(saved.get(key, 0)) for name, key in keys.items()}
 
@@ -181,7 +194,7 @@ def found_basins(store: RunStore) -> tuple[list[dict], np.ndarray]:
     """
     finds = {}
     for run in [store] + [shard for shard, _ in shard_stores(store.path)]:
-        state = run.read_state()
+        state = readable_state(run)
         if state is None or "found_basins" not in state:
             continue
         for found, positions_nm in zip(json.loads(str(state["found_basins"])), state["found_positions_nm"]):

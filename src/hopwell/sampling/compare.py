@@ -160,7 +160,7 @@ def run_jobs(jobs: list[dict], workers: int, progress=None) -> None:
 # -- reading them back ----------------------------------------------------------------------
 def _production_dihedrals(run_dir: Path, topology: md.Topology, torsions) -> tuple[np.ndarray, np.ndarray]:
     dihedrals, times = [], []
-    for chunk in RunStore.open(run_dir).iter_chunks():
+    for chunk in RunStore.open(run_dir).iter_chunks(damaged=[]):  # as the report, skip damaged chunks
         keep = chunk["state_production"].astype(bool)
         if keep.any():
             dihedrals.append(st.dihedrals(chunk["state_positions_nm"][keep], topology, torsions))

@@ -133,7 +133,7 @@ class ReplicaSampler(Sampler):
         if wrote_chunk:
             self.store.log(f"cycle {self.cycle}: exchange acceptance {self.swap.counters.describe()}")
 
-    def restore(self, state: dict) -> None:
+    def restore(self, state: dict, flow_state: dict) -> None:
         """Continue from a checkpoint: the base state (fresh rung noise included) and the exchange counts."""
-        super().restore(state)
+        super().restore(state, flow_state)
         self.swap.load_state_dict(json.loads(str(state["stats"])))

@@ -14,9 +14,13 @@ from rdkit import Chem
 
 from hopwell.coords.guards import ProposalGuard, refuse_failing_seeds
 from hopwell.errors import InputError
+from hopwell.sampling.checkpoint import PREVIOUS_STATE_FILE, STATE_FILE, newest_good
+from hopwell.sampling.files import read_molecules, read_system
+from hopwell.sampling.recovery import checkpoint_for_resume
 from hopwell.sampling.replica import ReplicaSampler
+from hopwell.sampling.run_config import FORMAT_VERSION, required
 from hopwell.sampling.sampler import Budget, Sampler, SamplerSettings
-from hopwell.sampling.store import RunStore
+from hopwell.sampling.store import CONFIG_FILE, RunStore
 from hopwell.systems.builder import (
     BuildOptions,
     MolecularSystem,
@@ -24,10 +28,6 @@ from hopwell.systems.builder import (
     conformer_positions_nm,
 )
 
-# The run directory's layout version, written to run.toml as ``format``. Runs written before it
-# existed carry none and are format 1 (the same files); a newer format is refused.
-FORMAT_VERSION = 2
-READABLE_FORMATS = (1, 2)
 # Settings that runs made before they existed did without: such a run resumes as it began.
 LEGACY_SETTINGS = {"flow_torsions": "all", "darts_per_cycle": 0, "flow_stiff_torsions": True,
                    "flow_context": False, "context_noise": 0.0, "weight_decay": 0.0}
@@ -119,54 +119,62 @@ def start_run(spec: str, out_dir: Path, build_options: BuildOptions, settings: S
     return sampler
 
 
-def load_sampler(run_dir: Path) -> Sampler:
-    """A sampler restored from a run directory's newest checkpoint.
+def load_sampler(run_dir: Path, notice=None) -> Sampler:
+    """A sampler restored from a run directory's newest good checkpoint.
 
-    A start killed after the directory was created but before checkpoint zero leaves no
-    state.npz and no chunks; the sampler then starts from the beginning. Restoring removes the
-    chunks no checkpoint counts, so a caller that is not :func:`resume_run` must make sure no
-    other process samples into ``run_dir`` (:meth:`RunStore.exclusive`).
+    Everything is read and checked before anything is changed: run.toml
+    (:mod:`hopwell.sampling.run_config`), molecule.sdf, system.xml. A damaged checkpoint falls
+    back to the previous one and damaged chunks are named (:mod:`hopwell.sampling.recovery`;
+    ``notice`` is called with one line for each). A start killed after the directory was created
+    but before checkpoint zero leaves no state.npz and no chunks; the sampler then starts from
+    the beginning. Restoring removes the chunks no checkpoint counts, so a caller that is not
+    :func:`resume_run` must make sure no other process samples into ``run_dir``
+    (:meth:`RunStore.exclusive`).
     """
     store = RunStore.open(Path(run_dir))
-    state = store.read_state()
-    if state is None and store.chunk_indices():
-        raise InputError(f"{run_dir}: sample chunks but no checkpoint (state.npz); the run"
-                         " directory is damaged")
     config = store.config()
-    version = config.get("format", 1)
-    if version not in READABLE_FORMATS:
-        raise InputError(f"{run_dir}: run directory format {version}; this hopwell reads formats"
-                         f" {READABLE_FORMATS[0]}-{READABLE_FORMATS[-1]}")
+    where = store.path / CONFIG_FILE
     names = {f.name for f in fields(SamplerSettings)}
-    saved = {**LEGACY_SETTINGS, **config["sampler"]}
+    saved = {**LEGACY_SETTINGS, **required(config, "sampler", where)}
     settings = SamplerSettings(**{k: v for k, v in saved.items() if k in names})
-    records = list(Chem.SDMolSupplier(str(store.path / "molecule.sdf"), removeHs=False))
+    walkers = required(config, "walkers", where)
+    records = read_molecules(store.path / "molecule.sdf")
     mol = records[0]
     seeds_nm = np.stack([conformer_positions_nm(m)[0] for m in records])
-    system = openmm.XmlSerializer.deserialize(store.read_text("system.xml"))
-    sampler = make_sampler(mol, system, seeds_nm, settings, store, config["walkers"],
-                           config.get("platform") or None)
-    if state is None:
+    system = read_system(store.path / "system.xml")
+    if not (store.path / STATE_FILE).exists() and store.chunk_indices():
+        keep = (f", or copy {PREVIOUS_STATE_FILE} to state.npz to continue from the checkpoint before it"
+                if (store.path / PREVIOUS_STATE_FILE).exists() else "")
+        raise InputError(f"{run_dir}: sample chunks but no checkpoint (state.npz); the run directory is"
+                         f" damaged: restore state.npz from a backup{keep}")
+    checkpoint = checkpoint_for_resume(store, notice)
+    sampler = make_sampler(mol, system, seeds_nm, settings, store, walkers, config.get("platform") or None)
+    if checkpoint is None:
         store.discard_chunks_from(0)  # only temp files of the interrupted start can be there
+        (store.path / PREVIOUS_STATE_FILE).unlink(missing_ok=True)  # nothing to fall back to yet
         store.log("resume: no checkpoint yet (the start was interrupted); starting from cycle 0")
         return sampler
-    sampler.restore(state)
+    sampler.restore(checkpoint.state, checkpoint.flow)
     return sampler
 
 
 def saved_budget(run_dir: Path) -> Budget:
     """The budget a run was started with."""
-    saved = RunStore.open(Path(run_dir)).config()["budget"]
+    store = RunStore.open(Path(run_dir))
+    saved = required(store.config(), "budget", store.path / CONFIG_FILE)
     return Budget(samples=saved.get("samples"), seconds=saved.get("seconds"))
 
 
-def resume_run(run_dir: Path, budget: Budget | None = None, progress=None, stop_when=None) -> Sampler:
-    """Continue a run from its newest checkpoint, with its own budget unless one is given.
+def resume_run(run_dir: Path, budget: Budget | None = None, progress=None, stop_when=None,
+               notice=None) -> Sampler:
+    """Continue a run from its newest good checkpoint, with its own budget unless one is given.
 
     Refused (:class:`~hopwell.errors.InputError`) while another process samples into ``run_dir``.
+    ``notice`` is called with one line for each damage found and recovered from
+    (:func:`load_sampler`).
     """
     with RunStore.open(Path(run_dir)).exclusive():
-        sampler = load_sampler(run_dir)
+        sampler = load_sampler(run_dir, notice)
         if budget is None:
             budget = saved_budget(run_dir)
         sampler.store.log(f"resumed at cycle {sampler.cycle}")
@@ -209,12 +217,16 @@ def check_settings(settings: SamplerSettings) -> None:
 def run_status(run_dir: Path) -> dict:
     """What ``hopwell status`` shows: phase, cycle, samples and acceptance, from the checkpoint.
 
-    Reads only; safe while another process samples into ``run_dir``.
+    Reads only; safe while another process samples into ``run_dir``. The checkpoint is the one
+    a resume would continue from: the previous one when state.npz is damaged (``warnings`` says
+    why).
     """
     store = RunStore.open(Path(run_dir))
-    state = store.read_state()
-    if state is None:
+    config = store.config()
+    checkpoint = newest_good(store.path)
+    if checkpoint is None:
         raise InputError(f"{run_dir}: no checkpoint yet (the run is starting)")
+    state = checkpoint.state
     stats = json.loads(str(state["stats"]))
 
     def rate(name):
@@ -236,5 +248,8 @@ def run_status(run_dir: Path) -> dict:
         "states_failing_guard": stats["langevin"].get("outside_guard") if "langevin" in stats else None,
         "exchange_acceptance": (sum(stats["exchange"]["accepted"]) / sum(stats["exchange"]["attempted"])
                                 if "exchange" in stats and sum(stats["exchange"]["attempted"]) else None),
-        "budget": store.config().get("budget", {}),
+        "budget": config.get("budget", {}),
+        "checkpoint": checkpoint.file,  # state.previous.npz when state.npz is damaged
+        "warnings": [f"{line}; showing the previous checkpoint, the one a resume continues from"
+                     for line in checkpoint.passed_over],
     }

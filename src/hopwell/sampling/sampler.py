@@ -32,7 +32,6 @@ import numpy as np
 import torch
 from rdkit import Chem
 
-from hopwell.atomic import atomic_write_bytes
 from hopwell.coords.guards import ProposalGuard, refuse_failing_seeds
 from hopwell.coords.internal import build_zmatrix, cartesian_to_internal
 from hopwell.flow.training import FlowTrainer
@@ -284,12 +283,11 @@ class Sampler:
         if self.queue:
             self.store.write_chunk(self.next_chunk, *self.queue.take())
             self.next_chunk += 1
-        flow_path = self.store.flow_path(self.cycle)
         # Atomic like every other file: a flush at the checkpoint's own cycle (the run's last
         # one, or a resume from checkpoint zero) rewrites the flow file state.npz names.
         buffer = io.BytesIO()
         torch.save(self.trainer.state_dict(), buffer)
-        atomic_write_bytes(flow_path, buffer.getvalue())
+        flow_path = self.store.write_flow(self.cycle, buffer.getvalue())
         self.store.write_state({
             "cycle": np.int64(self.cycle), "next_chunk": np.int64(self.next_chunk),
             "training_end_cycle": np.int64(self.training_end_cycle), "elapsed_s": np.float64(self.elapsed_s),
@@ -304,10 +302,18 @@ class Sampler:
                 "found_basins": np.str_(json.dumps([b.as_dict() for b in self.found_basins])),
                 "found_positions_nm": np.stack([b.positions_nm for b in self.found_basins])}),
         })
-        self.store.prune_flows(keep=flow_path)
+        self.store.prune_flows()
 
-    def restore(self, state: dict) -> None:
-        """Continue from a checkpoint: drop chunks it does not count, reload everything else."""
+    def restore(self, state: dict, flow_state: dict) -> None:
+        """Continue from a checkpoint: drop chunks it does not count, reload everything else.
+
+        Parameters
+        ----------
+        state : dict
+            The checkpoint's arrays (:class:`~hopwell.sampling.checkpoint.Checkpoint`).
+        flow_state : dict
+            The flow checkpoint it names, loaded with ``weights_only=True``.
+        """
         self.cycle, self.training_end_cycle = int(state["cycle"]), int(state["training_end_cycle"])
         self.elapsed_s, self.next_chunk = float(state["elapsed_s"]), int(state["next_chunk"])
         self.production_samples = int(state["production_samples"])
@@ -315,7 +321,7 @@ class Sampler:
         if removed:
             self.store.log(f"resume: removed {removed} chunk(s) written after the last checkpoint")
         self.walkers = Walkers(np.array(state["positions_nm"]), np.array(state["energies_kj"]))
-        self.trainer.load_state_dict(torch.load(self.store.path / str(state["flow_file"]), weights_only=True))
+        self.trainer.load_state_dict(flow_state)
         self.streams.load_state_arrays(state)
         # Fresh noise: the integrator's seed is fixed when its context is made, so a resumed run
         # would otherwise replay the Langevin noise of the run's start.
@@ -332,7 +338,8 @@ class Sampler:
             move.load_state_dict(counters)
         self._set_phase()
         if not self.production:  # rebuild the training buffer from the recorded training states
-            for chunk in self.store.iter_chunks(upto=self.next_chunk):
+            # (a damaged chunk's states are left out; resume has named it already)
+            for chunk in self.store.iter_chunks(upto=self.next_chunk, damaged=[]):
                 pos = chunk["state_positions_nm"][~chunk["state_production"].astype(bool)]
                 if len(pos):
                     self.trainer.add(pos)

@@ -92,7 +92,15 @@ def n_planned(run_dir: Path) -> int | None:
     path = Path(run_dir) / SHARD_DIR / PLAN_FILE
     if not path.is_file():
         return None
-    return int(tomllib.loads(path.read_text())["shards"])
+    try:
+        shards = tomllib.loads(path.read_text()).get("shards")
+    except (UnicodeDecodeError, tomllib.TOMLDecodeError) as exc:
+        raise InputError(f"{path}: not valid TOML ({exc}); it should read 'shards = N', N the number of"
+                         " shards the run was started with") from None
+    if not isinstance(shards, int) or isinstance(shards, bool) or shards < 1:
+        raise InputError(f"{path}: 'shards' must be a positive integer, not {shards!r}; it should read"
+                         " 'shards = N', N the number of shards the run was started with")
+    return shards
 
 
 def _shard_state(state: dict, first: int, count: int, seed: int) -> dict:
@@ -301,14 +309,18 @@ def _done(path: Path, budget: dict) -> bool:
 
 
 def train_then_shard(run_dir: Path, workers: int | None = None, scheduler: str | None = None,
-                     budget=None, progress=None) -> list[dict]:
-    """Finish the training of a sharded run if needed, then sample its shards (start and resume)."""
+                     budget=None, progress=None, notice=None) -> list[dict]:
+    """Finish the training of a sharded run if needed, then sample its shards (start and resume).
+
+    ``notice`` hears of damage recovered from in the training run (:func:`~hopwell.sampling.run.resume_run`);
+    a shard's is written to its own progress log.
+    """
     from hopwell.sampling.run import resume_run
     from hopwell.sampling.sampler import Budget
 
     state = RunStore.open(run_dir).read_state()
     if state is None or int(state["training_end_cycle"]) < 0:
-        resume_run(Path(run_dir), Budget(training_only=True), progress)
+        resume_run(Path(run_dir), Budget(training_only=True), progress, notice=notice)
     return run_shards(run_dir, workers, scheduler, budget)
 
 
@@ -364,8 +376,11 @@ def start_sharded_run(spec: str, out_dir: Path, build_options, settings, budget,
 
 
 def iter_pooled_chunks(store: RunStore):
-    """The run's own chunks, then each shard's, walkers numbered over all shards (as the report's)."""
-    yield from store.iter_chunks()
+    """The run's own chunks, then each shard's, walkers numbered over all shards (as the report's).
+
+    Damaged chunks are skipped, as the report's reading skips them (and names them).
+    """
+    yield from store.iter_chunks(damaged=[])
     for shard, first in shard_stores(store.path):
-        for chunk in shard.iter_chunks():
+        for chunk in shard.iter_chunks(damaged=[]):
             yield {**chunk, "state_walker": chunk["state_walker"] + first}

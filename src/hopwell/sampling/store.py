@@ -8,6 +8,7 @@ Layout of a run directory ``DIR``::
     DIR/system.xml          the OpenMM system
     DIR/chunks/NNNNNN.npz   sample chunks, numbered from 0, each written atomically
     DIR/state.npz           the sampler checkpoint (walker states, counters, RNG state)
+    DIR/state.previous.npz  the checkpoint state.npz replaced, kept to fall back to
     DIR/flow-NNNNNN.pt      flow checkpoints (torch state dicts), named by cycle
     DIR/progress.log        human-readable progress lines (append-only)
     DIR/run.lock            held (flock) by the one process sampling into DIR; holds its pid
@@ -21,15 +22,27 @@ writer: a process that samples into the directory holds an exclusive ``flock`` o
 (:meth:`RunStore.exclusive`), so a second start or resume of the same directory is refused. The
 kernel releases the lock when its holder dies, ``kill -9`` included, so no stale lock blocks a
 resume.
+
+Damage (see :mod:`hopwell.sampling.checkpoint` and :mod:`hopwell.sampling.recovery`): a
+checkpoint that no longer loads falls back to the previous one (``DIR/state.previous.npz``);
+a chunk that no longer loads is skipped by readers that ask for it (:meth:`RunStore.iter_chunks`)
+and named, and never read as samples.
+
+A full disk: every write of the store goes through one boundary that turns ``ENOSPC`` and
+``EDQUOT`` into :class:`NoSpaceLeft`, a one-line error. The write that failed leaves no file
+behind (:func:`~hopwell.atomic.atomic_write_bytes` removes its temporary file) and the ordering
+above holds, so the directory is as after a crash at that instant: ``hopwell resume`` continues
+from the last checkpoint once space is back, losing and duplicating nothing.
 """
 
 from __future__ import annotations
 
+import errno
 import fcntl
 import io
 import os
+import re
 import time
-import tomllib
 from contextlib import contextmanager
 from pathlib import Path
 
@@ -37,9 +50,12 @@ import numpy as np
 
 from hopwell.atomic import atomic_write_bytes
 from hopwell.errors import InputError
+from hopwell.sampling.checkpoint import STATE_FILE, flow_files_named, keep_previous, newest_good
+from hopwell.sampling.files import DamagedFile, check_archive, read_npz
+from hopwell.sampling.run_config import read_run_config
 
 CHUNK_DIR = "chunks"
-STATE_FILE = "state.npz"
+CHUNK_NAME = re.compile(r"\d{6}\.npz")
 CONFIG_FILE = "run.toml"
 LOG_FILE = "progress.log"
 LOCK_FILE = "run.lock"
@@ -51,6 +67,23 @@ STATE_FIELDS = ("positions_nm", "energy_kj", "walker", "cycle", "move", "accepte
 PROPOSAL_FIELDS = ("positions_nm", "energy_kj", "log_q", "log_jacobian", "walker", "cycle", "accepted",
                    "rejected_by")
 MOVE_LANGEVIN, MOVE_FLOW = 0, 1
+NO_SPACE = (errno.ENOSPC, errno.EDQUOT)
+
+
+class NoSpaceLeft(InputError):
+    """A write into a run directory failed for want of space (or quota); the message says what to do."""
+
+
+@contextmanager
+def no_space_stop(run_dir: Path, what: str, fix: str):
+    """Turn ``ENOSPC``/``EDQUOT`` inside the block into :class:`NoSpaceLeft` naming ``what`` and ``fix``."""
+    try:
+        yield
+    except OSError as exc:
+        if exc.errno not in NO_SPACE:
+            raise
+        raise NoSpaceLeft(f"{run_dir}: no space left on its device ({os.strerror(exc.errno)}) while"
+                          f" writing {what}; {fix}") from None
 
 
 def _npz_bytes(arrays: dict) -> bytes:
@@ -92,12 +125,13 @@ class RunStore:
         """Make a new run directory; refuses one that already holds a run."""
         path = Path(path)
         cls.refuse_existing(path)
-        (path / CHUNK_DIR).mkdir(parents=True, exist_ok=True)
-        store = cls(path)
-        for name, data in files.items():
-            atomic_write_bytes(path / name, data)
-        atomic_write_bytes(path / CONFIG_FILE, to_toml(config).encode())  # last: marks a run
-        return store
+        with no_space_stop(path, "the new run's files",
+                           "the run was not started: free some space and start it again"):
+            (path / CHUNK_DIR).mkdir(parents=True, exist_ok=True)
+            for name, data in files.items():
+                atomic_write_bytes(path / name, data)
+            atomic_write_bytes(path / CONFIG_FILE, to_toml(config).encode())  # last: marks a run
+        return cls(path)
 
     @staticmethod
     def refuse_existing(path: Path) -> None:
@@ -155,13 +189,15 @@ class RunStore:
         finally:
             os.close(fd)
 
+    def writing(self, what: str):
+        """The write boundary of a run in progress: a full disk stops it with one line."""
+        return no_space_stop(self.path, what, "everything up to the last checkpoint is kept: free some"
+                             f" space, then run 'hopwell resume {self.path}'")
+
     # -- configuration and files ----------------------------------------------------------
     def config(self) -> dict:
-        with open(self.path / CONFIG_FILE, "rb") as handle:
-            return tomllib.load(handle)
-
-    def read_text(self, name: str) -> str:
-        return (self.path / name).read_text()
+        """run.toml, parsed and checked (:func:`~hopwell.sampling.run_config.read_run_config`)."""
+        return read_run_config(self.path / CONFIG_FILE)
 
     # -- chunks ---------------------------------------------------------------------------
     def chunk_path(self, index: int) -> Path:
@@ -171,18 +207,49 @@ class RunStore:
         """Write chunk ``index`` atomically: ``state_<field>`` and ``proposal_<field>`` arrays."""
         arrays = {f"state_{k}": np.asarray(v) for k, v in states.items()}
         arrays.update({f"proposal_{k}": np.asarray(v) for k, v in proposals.items()})
-        atomic_write_bytes(self.chunk_path(index), _npz_bytes(arrays))
+        with self.writing(f"{CHUNK_DIR}/{self.chunk_path(index).name}"):
+            atomic_write_bytes(self.chunk_path(index), _npz_bytes(arrays))
 
     def chunk_indices(self) -> list[int]:
-        return sorted(int(p.stem) for p in (self.path / CHUNK_DIR).glob("[0-9]*.npz"))
+        return sorted(int(p.stem) for p in (self.path / CHUNK_DIR).glob("*.npz")
+                      if CHUNK_NAME.fullmatch(p.name))
 
-    def iter_chunks(self, upto: int | None = None):
-        """Yield each chunk's arrays as a dict, in order, up to (not including) ``upto``."""
+    def iter_chunks(self, upto: int | None = None, damaged: list[DamagedFile] | None = None):
+        """Yield each chunk's arrays as a dict, in order, up to (not including) ``upto``.
+
+        Parameters
+        ----------
+        upto : int, optional
+        damaged : list, optional
+            Where to collect a :class:`~hopwell.sampling.files.DamagedFile` (path and reason)
+            for each chunk that does not load (cut short, zeroed, holding pickles); such chunks
+            are skipped. Without it, the first one raises.
+        """
         for index in self.chunk_indices():
             if upto is not None and index >= upto:
                 break
-            with np.load(self.chunk_path(index)) as data:
-                yield {k: data[k] for k in data.files}
+            try:
+                chunk = read_npz(self.chunk_path(index))
+            except DamagedFile as exc:
+                if damaged is None:
+                    raise
+                damaged.append(exc)
+                continue
+            yield chunk
+
+    def unreadable_chunks(self, upto: int) -> list[DamagedFile]:
+        """Chunks numbered below ``upto`` that are missing or whose archive does not open.
+
+        A quick look (each archive's directory, not its data), for resume; readers that load
+        the data find damage within it too (:meth:`iter_chunks`).
+        """
+        out = []
+        for index in range(upto):
+            try:
+                check_archive(self.chunk_path(index))
+            except DamagedFile as exc:
+                out.append(exc)
+        return out
 
     def discard_chunks_from(self, first: int) -> int:
         """Remove chunks numbered ``first`` or above (work no checkpoint counts); return how many."""
@@ -198,29 +265,42 @@ class RunStore:
 
     # -- checkpoints ----------------------------------------------------------------------
     def write_state(self, arrays: dict) -> None:
-        atomic_write_bytes(self.path / STATE_FILE, _npz_bytes(arrays))
+        """Write the checkpoint, keeping the one it replaces as ``state.previous.npz``."""
+        with self.writing(f"the checkpoint ({STATE_FILE})"):
+            keep_previous(self.path)
+            atomic_write_bytes(self.path / STATE_FILE, _npz_bytes(arrays))
 
     def read_state(self) -> dict | None:
-        path = self.path / STATE_FILE
-        if not path.exists():
-            return None
-        with np.load(path, allow_pickle=False) as data:
-            return {k: data[k] for k in data.files}
+        """The arrays of the checkpoint a resume would continue from (see :func:`newest_good`).
+
+        None before the first checkpoint. Raises InputError (one line) when no good
+        checkpoint is left.
+        """
+        checkpoint = newest_good(self.path)
+        return None if checkpoint is None else checkpoint.state
 
     def flow_path(self, cycle: int) -> Path:
         return self.path / f"flow-{cycle:06d}.pt"
 
-    def prune_flows(self, keep: Path) -> None:
-        """Remove flow checkpoints other than ``keep`` (the one the sampler state names)."""
+    def write_flow(self, cycle: int, data: bytes) -> Path:
+        """Write the flow checkpoint of ``cycle`` (torch-saved bytes) atomically; return its path."""
+        path = self.flow_path(cycle)
+        with self.writing(f"the flow checkpoint ({path.name})"):
+            atomic_write_bytes(path, data)
+        return path
+
+    def prune_flows(self) -> None:
+        """Remove the flow checkpoints that neither state.npz nor state.previous.npz names."""
+        keep = flow_files_named(self.path)
         for path in self.path.glob("flow-*.pt"):
-            if path != keep:
+            if path.name not in keep:
                 path.unlink(missing_ok=True)
 
     # -- log ------------------------------------------------------------------------------
     def log(self, message: str) -> None:
         """Append one timestamped line to the progress log (durable, not atomic)."""
         line = f"{time.strftime('%Y-%m-%d %H:%M:%S')} {message}\n"
-        with open(self.path / LOG_FILE, "a") as handle:
+        with self.writing(LOG_FILE), open(self.path / LOG_FILE, "a") as handle:
             handle.write(line)
             handle.flush()
             os.fsync(handle.fileno())
