@@ -8,6 +8,7 @@ in scipy.constants).
 
 from __future__ import annotations
 
+import json
 import math
 
 import mdtraj
@@ -121,3 +122,31 @@ def test_bad_pose_files_are_refused_in_one_line(tmp_path):
     (tmp_path / "pose.pdb").write_text("END\n")
     with pytest.raises(InputError, match=".sdf, .mol or .mol2"):
         read_pose(tmp_path / "pose.pdb")
+
+
+def test_report_gives_the_pose_population_of_a_run(tmp_path):
+    """``hopwell report --pose`` on a short n-butane run: the pose (an anti structure embedded by
+    RDKit, its C-C-C-C dihedral read by RDKit) lies in the report's anti state, whose row of the
+    population table it must repeat, with cost -kT ln p."""
+    from run_checks import hopwell, make_run
+
+    run_dir = make_run(tmp_path / "run")
+    mol = _embedded("CCCC")
+    AllChem.SetDihedralDeg(mol.GetConformer(), 0, 1, 2, 3, 180.0)
+    assert abs(rdMolTransforms.GetDihedralDeg(mol.GetConformer(), 0, 1, 2, 3)) == pytest.approx(180.0)
+    _write_sdf(tmp_path / "anti.sdf", mol)
+    result = hopwell("report", run_dir, "--pose", tmp_path / "anti.sdf", "--json")
+    assert result.exit_code == 0, result.stderr
+    summary = json.loads(result.stdout)
+    pose = summary["pose"]
+    assert pose["file"] == "anti.sdf" and len(pose["states"]) == 1 and "anti" in pose["states"][0]
+    row = next(s for s in summary["states"] if s["name"] == pose["states"][0])
+    assert pose["population"] == pytest.approx(row["population"])
+    kT = constants.R * summary["temperature_K"] / 1000.0
+    assert pose["dG_kJ_per_mol"] == pytest.approx(-kT * math.log(pose["population"]))
+    assert pose["ci95"][0] <= pose["population"] <= pose["ci95"][1]
+    assert 'id="pose"' in (run_dir / "report.html").read_text()
+    # A pose of another molecule: one line, exit 2.
+    _write_sdf(tmp_path / "propanol.sdf", _embedded("CCCO"))
+    bad = hopwell("report", run_dir, "--pose", tmp_path / "propanol.sdf")
+    assert bad.exit_code == 2 and "not the run's molecule" in bad.stderr and "Traceback" not in bad.stderr

@@ -192,7 +192,7 @@ class Run:
             resume_run(self.path, budget, progress=progress)
         return self
 
-    def summary(self, states_file=None, reweight: dict | None = None) -> dict:
+    def summary(self, states_file=None, reweight: dict | None = None, pose_file=None) -> dict:
         """The analysis of ``hopwell report``: :func:`hopwell.analysis.summary.analyse`'s dict.
 
         Parameters
@@ -201,16 +201,19 @@ class Run:
             A states TOML; by default torsion wells or backbone regions.
         reweight : dict, optional
             ``temperature_K``, ``solvent`` and/or ``forcefield`` to reweight to.
+        pose_file : str or os.PathLike, optional
+            One structure (SDF/MOL/MOL2, e.g. a bound pose): its population and cost go under
+            ``"pose"`` (:mod:`hopwell.analysis.pose`).
         """
         from hopwell.analysis.summary import analyse
 
-        return analyse(self.path, reweight=reweight, states_file=states_file)
+        return analyse(self.path, reweight=reweight, states_file=states_file, pose_file=pose_file)
 
-    def report(self, states_file=None, reweight: dict | None = None) -> Path:
+    def report(self, states_file=None, reweight: dict | None = None, pose_file=None) -> Path:
         """Write report.html, summary.json, populations.csv and the ensemble; return the page's path."""
         from hopwell.report import write_report
 
-        return write_report(self.path, self.summary(states_file, reweight))
+        return write_report(self.path, self.summary(states_file, reweight, pose_file))
 
     def populations(self, states_file=None) -> list[dict]:
         """One row per state, with the columns of populations.csv.

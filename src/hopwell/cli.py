@@ -522,8 +522,11 @@ def batch(molecules_file, batch_dir, hours, samples, temperature_K, walkers, tra
               default=None, help="Also give populations reweighted to this force field.")
 @click.option("--states", "states_file", type=click.Path(dir_okay=False), default=None,
               help="States TOML file [default: automatic torsion wells or backbone regions].")
+@click.option("--pose", "pose_file", type=click.Path(dir_okay=False), default=None,
+              help="One structure you care about (SDF/MOL/MOL2, e.g. a bound pose): its population"
+                   " (samples in its torsion wells) and cost -kT ln p.")
 @_fail_cleanly
-def report(run_dir, as_json, reweight_temperature, reweight_solvent, reweight_forcefield, states_file):
+def report(run_dir, as_json, reweight_temperature, reweight_solvent, reweight_forcefield, states_file, pose_file):
     """Analyse RUN_DIR: populations, intervals, verdict; writes report.html and friends.
 
     \b
@@ -531,13 +534,14 @@ def report(run_dir, as_json, reweight_temperature, reweight_solvent, reweight_fo
       hopwell report dipeptide --json
       hopwell report amide --reweight-solvent obc2
       hopwell report amide --states systems/demo_amide_states.toml
+      hopwell report ligand --pose bound.sdf
     """
     from hopwell.analysis.summary import analyse, public
     from hopwell.report import format_table, write_report
 
     reweight = {k: v for k, v in (("temperature_K", reweight_temperature), ("solvent", reweight_solvent),
                                   ("forcefield", reweight_forcefield)) if v is not None}
-    summary = analyse(Path(run_dir), reweight=reweight or None, states_file=states_file)
+    summary = analyse(Path(run_dir), reweight=reweight or None, states_file=states_file, pose_file=pose_file)
     for line in summary["damage"]:
         _warn(line)
     page = write_report(Path(run_dir), summary)
@@ -560,7 +564,6 @@ def status(run_dir, as_json):
       hopwell status dipeptide
     """
     from hopwell.sampling.run import run_status
-
     from hopwell.sampling.shards import n_planned, shard_status
 
     info = run_status(Path(run_dir))

@@ -23,6 +23,14 @@ from hopwell.analysis import states as st
 from hopwell.analysis import stats
 from hopwell.analysis.labels import ATOM_NUMBERING, torsion_labels
 from hopwell.analysis.observables import KARPLUS_HN_HA, j3_hn_ha, series_mean
+from hopwell.analysis.pose import (
+    PoseResult,
+    near_pose,
+    pose_images,
+    pose_population,
+    pose_states,
+    read_pose,
+)
 from hopwell.analysis.production import (
     Production,
     acceptance_over_time,
@@ -58,7 +66,7 @@ def _state_model(store: RunStore, mol: Chem.Mol, topology: md.Topology, states_f
 
 
 def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict | None = None,
-            states_file: Path | None = None, model=None) -> dict:
+            states_file: Path | None = None, model=None, pose_file: Path | None = None) -> dict:
     """Populations, free energies, diagnostics and the verdict of a run (the summary dict).
 
     Parameters
@@ -74,6 +82,9 @@ def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict
         A user's states TOML (see :class:`hopwell.analysis.states.UserStates`); default automatic states.
     model : optional
         A state model to use instead (:mod:`hopwell.analysis.states`), e.g. one shared by several runs.
+    pose_file : Path, optional
+        One structure (SDF/MOL/MOL2) the user cares about, e.g. a bound pose: its population and
+        conformational cost go under ``"pose"`` (:mod:`hopwell.analysis.pose`).
     """
     store = RunStore.open(Path(run_dir))
     config = store.config()
@@ -161,9 +172,22 @@ def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict
     summary["torsions"] = [{**tag.as_dict(), "numbering": ATOM_NUMBERING} for tag in tags]
     summary["_torsion_labels"] = tags
     summary["_molecule"] = mol
+    if pose_file is not None:
+        summary["pose"] = _pose(Path(pose_file), mol, topology, model, production, kT, rng, n_boot)
     if reweight:
         summary["reweighted"] = _reweighted(store, reweight, production, series, model, rng, n_boot)
     return summary
+
+
+def _pose(path: Path, mol, topology, model, production: Production, kT: float, rng, n_boot: int) -> dict:
+    """The pose's population and cost under the report's state model (see :mod:`hopwell.analysis.pose`)."""
+    pose = read_pose(path)
+    images = pose_images(pose, mol, model.torsions)
+    pose_dihedrals = st.dihedrals(images, topology, model.torsions)
+    near = walker_series(near_pose(model, pose_dihedrals, production.dihedrals_rad), production)
+    p, ci, dg, dg_ci = pose_population(near, kT, rng, n_boot)
+    result = PoseResult(pose_states(model, pose_dihedrals), p, ci, dg, dg_ci)
+    return {"file": path.name, **result.as_dict()}
 
 
 def local_move_counts(store: RunStore) -> dict:
