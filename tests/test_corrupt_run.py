@@ -92,6 +92,20 @@ def test_a_damaged_chunk_is_skipped_by_report_and_named_by_resume(run_dir, how):
     assert after["production_records"] == 200 - 4 * len(CHUNK_CYCLES)
 
 
+def test_reweighting_skips_the_damaged_chunk_as_the_report_does(run_dir):
+    _damage(run_dir / "chunks" / f"{CHUNK:06d}.npz", "half")
+    # Sampled on past the damage, so that reweighting has the effective samples it asks for.
+    assert hopwell("resume", run_dir, "--samples", 1200).exit_code == 0
+    # MMFF94s differs from MMFF94 only at conjugated nitrogens (Halgren 1999), so for n-butane
+    # the weights are all equal: the re-read energies must line up one to one with the samples
+    # the report read (a misaligned or longer list stops the report).
+    result = hopwell("report", run_dir, "--json", "--reweight-forcefield", "mmff94s")
+    assert result.exit_code == 0, result.stderr
+    summary = json.loads(result.stdout)
+    assert summary["samples"] == 1200 - 4 * len(CHUNK_CYCLES)
+    assert summary["reweighted"]["effective_samples"] == pytest.approx(summary["effective_samples"])
+
+
 # -- checkpoints ----------------------------------------------------------------------------
 @pytest.mark.parametrize("how", ["half", "empty", "zeros", "random"])
 def test_a_damaged_checkpoint_falls_back_to_the_previous_one(run_dir, how):
