@@ -8,6 +8,7 @@ from rdkit import Chem
 from rdkit.Chem import AllChem, rdMolAlign
 
 from hopwell.errors import InputError
+from hopwell.systems import seeds
 from hopwell.systems.builder import BuildOptions, build
 from hopwell.systems.energy import EnergyEvaluator
 from hopwell.systems.solvent import (
@@ -54,6 +55,18 @@ def test_smiles_seeds_are_distinct():
     for a in range(len(mols)):
         for b in range(a + 1, len(mols)):
             assert rdMolAlign.GetBestRMS(Chem.Mol(mols[a]), mols[b]) >= 0.5
+
+
+def test_default_seeding_grows_with_the_rotatable_bonds():
+    # RDKit's strict rotatable-bond SMARTS (Descriptors' NumRotatableBonds) as the outside count.
+    from rdkit.Chem import Descriptors
+
+    for smiles in ("CCCC", "CCCCCC", "CCOC(=O)c1ccc(OCCOCC[NH+]2CCCCC2)cc1"):
+        n_rot = Descriptors.NumRotatableBonds(Chem.MolFromSmiles(smiles))
+        assert seeds.seed_count(n_rot) == min(300, 30 + 30 * n_rot)
+    molsys = build("CCCCCC", BuildOptions(random_seed=7))  # hexane: 3 rotatable bonds
+    assert "seeds from 120 ETKDG conformers, MMFF94-minimized" in molsys.notes
+    assert build("CCCCCC", BuildOptions(n_seeds=5, random_seed=7)).notes[0].startswith("seeds from 5 ")
 
 
 def test_unspecified_stereo_is_refused_unless_picked():

@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 
 from hopwell.analysis.stats import population_estimate
-from hopwell.analysis.verdict import MIN_ESS, MIN_TRANSITIONS, RHAT_MAX, judge
+from hopwell.analysis.verdict import MIN_ESS, MIN_TRANSITIONS, RHAT_MAX, first_entered_in_production, judge
 
 # One fragment of each reason's text, by rule.
 REASONS = {
@@ -172,3 +172,20 @@ def test_importance_warnings_each_alone():
     heavy, _ = verdict_of(series, 3, importance=importance_like(estimate, effective_samples=900.0))
     assert heavy.reasons == []
     assert heavy.warnings == ["heavy-tailed importance weights (ESS 900 of 10000 proposals)"]
+
+
+def test_states_first_entered_in_production_are_named_and_warned_about():
+    names = ["A", "B", "C", "other"]
+    production = np.array([0, 0, 1, 2, 3, 1])
+    training = np.array([0, 0, 1, 3])
+    # C (2) appears only in production; "other" (3) never counts; no training, no comparison.
+    assert first_entered_in_production(production, training, names) == ["C"]
+    assert first_entered_in_production(production, np.array([0, 1, 2]), names) == []
+    assert first_entered_in_production(production, np.zeros(0, int), names) == []
+    series = np.tile(np.array([0, 1] * 200), (2, 1))
+    estimate = population_estimate(series, 4, np.random.default_rng(0))
+    quiet = judge(series, estimate, names, [False] * 4)
+    loud = judge(series, estimate, names, [False] * 4, late_states=["C"])
+    assert not any("first entered in production" in w for w in quiet.warnings)
+    assert any("first entered in production" in w and "C" in w for w in loud.warnings)
+    assert loud.reasons == quiet.reasons  # a warning, not a reason

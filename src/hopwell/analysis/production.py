@@ -52,6 +52,7 @@ class Production:
     flow_accepted: int
     acceptance: CycleCounts  # flow acceptance per cycle, training and production
     damaged_chunks: list  # a DamagedFile (path, reason) for each chunk that did not load and was skipped
+    training_dihedrals_rad: np.ndarray  # (n_training, n_torsions): the training phase's chain states
 
 
 def _per_cycle(cycles: np.ndarray, flags: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -79,7 +80,7 @@ def _cycle_counts(n_cycles: int, block_parts: list, proposal_parts: list,
 
 def gather(store: RunStore, topology: md.Topology, torsions, kT: float) -> Production:
     """Production dihedrals, energies and proposal weights of a run, and its acceptance counts."""
-    parts = {k: [] for k in ("d", "e", "w", "o", "pd", "pw", "pb")}
+    parts = {k: [] for k in ("d", "e", "w", "o", "pd", "pw", "pb", "td")}
     accepted = 0
     block_tallies, proposal_tallies, production_cycles = [], [], []
     n_cycles = 0
@@ -90,6 +91,8 @@ def gather(store: RunStore, topology: md.Topology, torsions, kT: float) -> Produ
         flow = chunk["state_move"] == MOVE_FLOW
         block_tallies.append(_per_cycle(chunk["state_cycle"][flow], chunk["state_accepted"][flow]))
         production_cycles.append(np.unique(chunk["state_cycle"][keep]))
+        if not keep.all():
+            parts["td"].append(st.dihedrals(chunk["state_positions_nm"][~keep], topology, torsions))
         if keep.any():
             parts["d"].append(st.dihedrals(chunk["state_positions_nm"][keep], topology, torsions))
             parts["e"].append(chunk["state_energy_kj"][keep])
@@ -109,7 +112,13 @@ def gather(store: RunStore, topology: md.Topology, torsions, kT: float) -> Produ
     if not parts["pd"]:
         parts["pd"], parts["pw"], parts["pb"] = [np.zeros((0, len(torsions)))], [np.zeros(0)], [np.zeros(0, int)]
     return Production(*(np.concatenate(parts[k]) for k in ("d", "e", "w", "o", "pd", "pw", "pb")), accepted,
-                      _cycle_counts(n_cycles, block_tallies, proposal_tallies, production_cycles), damaged)
+                      _cycle_counts(n_cycles, block_tallies, proposal_tallies, production_cycles), damaged,
+                      _stacked(parts["td"], len(torsions)))
+
+
+def _stacked(parts: list, n_torsions: int) -> np.ndarray:
+    """Dihedral arrays stacked, ``(n, n_torsions)`` (empty when there are none)."""
+    return np.concatenate(parts) if parts else np.zeros((0, n_torsions))
 
 
 def _fraction(numerator: int, denominator: int) -> float | None:
@@ -252,17 +261,19 @@ def _add_counts(parts: list[CycleCounts]) -> CycleCounts:
                                                             "proposals_accepted")), total("production", bool))
 
 
-def _training_counts(store: RunStore, damaged: list) -> CycleCounts:
-    """Flow-block counts per cycle of a run's own chunks (a sharded run's training).
+def _training(store: RunStore, topology: md.Topology, torsions, damaged: list) -> tuple[CycleCounts, np.ndarray]:
+    """Flow-block counts per cycle of a run's own chunks (a sharded run's training), and the
+    dihedrals of their chain states.
 
     A DamagedFile for each chunk that does not load is appended to ``damaged``.
     """
-    tallies, n_cycles = [], 0
+    tallies, n_cycles, dihedrals = [], 0, []
     for chunk in store.iter_chunks(damaged=damaged):
         flow = chunk["state_move"] == MOVE_FLOW
         n_cycles = max(n_cycles, 1 + int(chunk["state_cycle"].max(initial=-1)))
         tallies.append(_per_cycle(chunk["state_cycle"][flow], chunk["state_accepted"][flow]))
-    return _cycle_counts(n_cycles, tallies, [], [])
+        dihedrals.append(st.dihedrals(chunk["state_positions_nm"], topology, torsions))
+    return _cycle_counts(n_cycles, tallies, [], []), _stacked(dihedrals, len(torsions))
 
 
 def gather_run(store: RunStore, topology: md.Topology, torsions, kT: float) -> Production:
@@ -288,7 +299,8 @@ def gather_run(store: RunStore, topology: md.Topology, torsions, kT: float) -> P
         "proposal_block": np.concatenate([p.proposal_block + first for p, first in parts]),  # cycle * 1e6 + walker
     }
     damaged = []
-    training = _training_counts(store, damaged)
+    training, training_dihedrals = _training(store, topology, torsions, damaged)
     return Production(**arrays, flow_accepted=sum(p.flow_accepted for p, _ in parts),
                       acceptance=_add_counts([training] + [p.acceptance for p, _ in parts]),
-                      damaged_chunks=damaged + [path for p, _ in parts for path in p.damaged_chunks])
+                      damaged_chunks=damaged + [path for p, _ in parts for path in p.damaged_chunks],
+                      training_dihedrals_rad=training_dihedrals)

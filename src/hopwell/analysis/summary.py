@@ -45,7 +45,7 @@ from hopwell.analysis.reweight import (
     reweighted_populations,
     temperature_log_weights,
 )
-from hopwell.analysis.verdict import judge
+from hopwell.analysis.verdict import first_entered_in_production, judge
 from hopwell.sampling.files import read_molecules
 from hopwell.sampling.recovery import ensure_topology
 from hopwell.sampling.shards import shard_stores
@@ -109,7 +109,10 @@ def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict
     named = [model.kind == "backbone" or (model.kind == "user" and s < n_states - 1) for s in range(n_states)]
     local_move = local_move_counts(store)
     found, found_positions_nm = found_basins(store)
-    verdict = judge(series, pops, model.names, named, importance, local_move, found)
+    training = production.training_dihedrals_rad
+    late = first_entered_in_production(labels, model.assign(training) if len(training) else np.zeros(0, int),
+                                       model.names)
+    verdict = judge(series, pops, model.names, named, importance, local_move, found, late)
     damage = ([rebuilt] if rebuilt else []) + checkpoint_warnings(store) + [
         f"{exc}: skipped, its records are not in this report" for exc in production.damaged_chunks]
     summary = {
@@ -149,6 +152,7 @@ def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict
             local_move["rolled_back"] / local_move["segments"] if local_move["segments"] else None)},
         "local_move": local_move,
         "found_basins": found,
+        "first_entered_in_production": late,
         "_found_positions_nm": found_positions_nm,
         "importance_sampling": importance,
         # A run without flow proposals still records a (never accepted) flow-move state.

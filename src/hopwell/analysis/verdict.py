@@ -39,9 +39,23 @@ class Verdict:
         return "converged" if self.converged else "not converged"
 
 
+def first_entered_in_production(production_labels: np.ndarray, training_labels: np.ndarray,
+                                names: list[str]) -> list[str]:
+    """States (not the last, "other") that production visited and training never did.
+
+    Training starts from the seeds, so such a state was reached only by sampling, late: its
+    basin was missing from the seeds and from the flow's training data. Empty when there was
+    no training phase to compare with.
+    """
+    if len(training_labels) == 0:
+        return []
+    late = set(np.unique(production_labels).tolist()) - set(np.unique(training_labels).tolist())
+    return [names[s] for s in sorted(late) if s != len(names) - 1]
+
+
 def judge(series: np.ndarray, estimate: stats.PopulationResult, names: list[str],
           named: list[bool], importance: dict | None = None, local_move: dict | None = None,
-          found_basins: list[dict] | None = None) -> Verdict:
+          found_basins: list[dict] | None = None, late_states: list[str] | None = None) -> Verdict:
     """Apply the verdict's rules to a run.
 
     Parameters
@@ -68,6 +82,9 @@ def judge(series: np.ndarray, estimate: stats.PopulationResult, names: list[str]
         The basin probes' finds (:mod:`hopwell.sampling.probes`; ``production``,
         ``above_lowest_kj``): one found in production, which no move targets, makes the run "not
         converged"; those found in training (dart centres from then on) are a warning.
+    late_states : list of str, optional
+        States first entered in production (:func:`first_entered_in_production`): a warning,
+        since their basins were missing from the seeds.
 
     Returns
     -------
@@ -133,4 +150,8 @@ def judge(series: np.ndarray, estimate: stats.PopulationResult, names: list[str]
     if early:
         out.warnings.append(f"found during the run: {len(early)} basin(s) no seed was in (dart centres from"
                             " then on); seed them next time (found-basins.sdf)")
+    if late_states:
+        out.warnings.append(f"{len(late_states)} state(s) first entered in production, never in the seeds or"
+                            f" training: {', '.join(late_states)}; the seeds missed their basins: seed them"
+                            " next time (a structure in each)")
     return out

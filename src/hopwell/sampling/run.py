@@ -71,12 +71,20 @@ def make_sampler(mol: Chem.Mol, system: openmm.System, seeds_nm: np.ndarray, set
     return Sampler(mol, system, seeds_nm, settings, store, n_walkers=n_walkers, platform=platform)
 
 
+# Walkers by default: one per seed, at most this many (the lowest-energy seeds; the others
+# still serve as dart centres). A flexible ligand's scaled ETKDG seeding can leave a few hundred
+# distinct seeds, and as many walkers would each get too short a series for the per-walker
+# diagnostics (R-hat, transitions) in an overnight run. Chosen, not measured.
+MAX_DEFAULT_WALKERS = 64
+
+
 def _walkers(settings: SamplerSettings, n_walkers: int | None, n_seeds: int) -> int:
-    """Walkers of a new run: one per rung for "remd", else ``n_walkers`` or one per seed."""
+    """Walkers of a new run: one per rung for "remd", else ``n_walkers`` or one per seed (at
+    most ``MAX_DEFAULT_WALKERS``)."""
     if n_walkers is not None and n_walkers < 1:
         raise InputError(f"--walkers must be at least 1, got {n_walkers}")
     if settings.method != "remd":
-        return n_walkers or n_seeds
+        return n_walkers or min(n_seeds, MAX_DEFAULT_WALKERS)
     if n_walkers is not None:
         raise InputError("remd runs one walker per temperature; set --replicas, not --walkers")
     return settings.replicas

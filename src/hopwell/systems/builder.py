@@ -40,8 +40,9 @@ class BuildOptions:
     solvent : {"vacuum", "obc2"}
     dielectric : {"constant", "distance"}
         MMFF electrostatics only; OBC2 needs the constant dielectric.
-    n_seeds : int
-        ETKDG conformers embedded for SMILES input (before de-duplication).
+    n_seeds : int or None
+        ETKDG conformers embedded for SMILES input (before de-duplication); None: by the
+        rotatable-bond count (:func:`hopwell.systems.seeds.seed_count`).
     template : str or None
         Bond-order SMILES for a small molecule given as PDB.
     add_hydrogens, pick_isomer : bool
@@ -56,7 +57,7 @@ class BuildOptions:
     forcefield: str | None = None
     solvent: str = "vacuum"
     dielectric: str = "constant"
-    n_seeds: int = 30
+    n_seeds: int | None = None
     template: str | None = None
     add_hydrogens: bool = False
     pick_isomer: bool = False
@@ -217,7 +218,7 @@ def _check_options(options: BuildOptions) -> None:
         raise InputError(f"unknown dielectric {options.dielectric!r}; use constant or distance")
     if options.solvent == "obc2" and options.dielectric != "constant":
         raise InputError("OBC2 implicit water needs the constant dielectric")
-    if options.n_seeds < 1:
+    if options.n_seeds is not None and options.n_seeds < 1:
         raise InputError(f"--seeds must be at least 1, got {options.n_seeds}")
 
 
@@ -251,10 +252,11 @@ def _build_mmff(parsed: ParsedInput, forcefield: str, options: BuildOptions) -> 
         add_obc2(system, topology, charges)
     notes = []
     if mol.GetNumConformers() == 0:
-        seed_mol = seeds.etkdg_seeds(mol, options.n_seeds, variant, options.random_seed)
+        n_embed = options.n_seeds or seeds.seed_count(len(rotatable_bonds(mol)))
+        seed_mol = seeds.etkdg_seeds(mol, n_embed, variant, options.random_seed)
         if seed_mol.GetNumConformers() == 0:
             raise InputError(f"{parsed.source}: RDKit could not embed any 3D structure")
-        notes.append(f"seeds from {options.n_seeds} ETKDG conformers, {variant}-minimized")
+        notes.append(f"seeds from {n_embed} ETKDG conformers, {variant}-minimized")
     else:
         seed_mol = mol
     distinct = seeds.deduplicate(seed_mol)
