@@ -13,7 +13,13 @@ import numpy as np
 import pytest
 
 from hopwell.analysis.stats import population_estimate
-from hopwell.analysis.verdict import MIN_ESS, MIN_TRANSITIONS, RHAT_MAX, first_entered_in_production, judge
+from hopwell.analysis.verdict import (
+    MIN_ESS,
+    MIN_TRANSITIONS,
+    RHAT_MAX,
+    first_entered_in_production,
+    judge,
+)
 
 # One fragment of each reason's text, by rule.
 REASONS = {
