@@ -152,6 +152,6 @@ def judge(series: np.ndarray, estimate: stats.PopulationResult, names: list[str]
                             " then on); seed them next time (found-basins.sdf)")
     if late_states:
         out.warnings.append(f"{len(late_states)} state(s) first entered in production, never in the seeds or"
-                            f" training: {', '.join(late_states)}; the seeds missed their basins: seed them"
-                            " next time (a structure in each)")
+                            f" training: {', '.join(late_states)}; the seeds may have missed their basins:"
+                            " seed them next time (a structure in each)")
     return out
