@@ -45,6 +45,7 @@ from hopwell.sampling.shards import (
     dask_client,
     iter_pooled_chunks,
     run_shards,
+    sample_shard,
     shard_finished,
     shard_status,
     shard_stores,
@@ -172,6 +173,18 @@ def test_interrupted_shard_resumes_and_pooled_populations_match_quadrature(train
     n = min(len(s) for s in series)
     for well in range(3):
         assert split_rhat(np.stack([(s[:n] == well).astype(float) for s in series])) < 1.05
+
+
+def test_a_shards_recovery_is_told_to_the_caller(trained, tmp_path):
+    run_dir = tmp_path / "run"
+    shutil.copytree(trained, run_dir)
+    shard0 = shard_stores(run_dir)[0][0]
+    resume_run(shard0.path, Budget(samples=200))  # two checkpoints in the shard
+    (shard0.path / "state.npz").write_bytes(b"")  # the newest one emptied
+    result = sample_shard(str(shard0.path), samples=400)
+    (line,) = result["notices"]
+    assert "state.npz is damaged" in line and "previous checkpoint" in line
+    assert result["production_samples"] >= 400
 
 
 def _kill_worker_of(client, key_prefix: str, store: RunStore, timeout_s: float = 120.0) -> None:

@@ -164,14 +164,18 @@ def sample_shard(path: str, samples: int | None = None, seconds: float | None = 
     """Sample one shard to its budget (resuming from its checkpoint); the Dask task.
 
     ``samples``/``seconds`` override the shard's saved budget when given. Runs single-threaded.
+    The result's ``notices`` are the damage lines its resume recovered from (also in the
+    shard's progress log), for the caller to show.
     """
     from hopwell.sampling.run import resume_run, saved_budget
     from hopwell.sampling.sampler import Budget
 
     torch.set_num_threads(1)
     budget = saved_budget(Path(path)) if samples is None and seconds is None else Budget(samples, seconds)
-    sampler = resume_run(Path(path), budget)
-    return {"shard": path, "cycle": sampler.cycle, "production_samples": sampler.production_samples}
+    notices: list[str] = []
+    sampler = resume_run(Path(path), budget, notice=notices.append)
+    return {"shard": path, "cycle": sampler.cycle, "production_samples": sampler.production_samples,
+            "notices": notices}
 
 
 def _client(workers: int | None, scheduler: str | None, quiet: bool = False):
@@ -264,7 +268,7 @@ def run_tasks(client, function, jobs: list[tuple], names: list[str], on_done=Non
 
 
 def run_shards(run_dir: Path, workers: int | None = None, scheduler: str | None = None,
-               budget=None) -> list[dict]:
+               budget=None, notice=None) -> list[dict]:
     """Sample every unfinished shard of ``run_dir`` on Dask; finished shards are left alone.
 
     Parameters
@@ -276,6 +280,9 @@ def run_shards(run_dir: Path, workers: int | None = None, scheduler: str | None 
         Address of an existing Dask scheduler.
     budget : Budget, optional
         A new budget for the whole run (samples shared among shards by walkers).
+    notice : callable, optional
+        Called with each damage line a shard's resume recovered from, prefixed by the shard's
+        name, as each shard finishes.
 
     Returns
     -------
@@ -296,8 +303,14 @@ def run_shards(run_dir: Path, workers: int | None = None, scheduler: str | None 
             jobs.append((str(path), override.get("samples"), override.get("seconds")))
     if not jobs:
         return []
+    names = [f"shard-{Path(job[0]).name}" for job in jobs]
+
+    def tell(k: int, result: dict) -> None:
+        for line in result.get("notices", []) if notice is not None else []:
+            notice(f"{names[k]}: {line}")
+
     with dask_client(workers, scheduler) as client:
-        return run_tasks(client, sample_shard, jobs, [f"shard-{Path(job[0]).name}" for job in jobs])
+        return run_tasks(client, sample_shard, jobs, names, on_done=tell)
 
 
 def _done(path: Path, budget: dict) -> bool:
@@ -312,8 +325,8 @@ def train_then_shard(run_dir: Path, workers: int | None = None, scheduler: str |
                      budget=None, progress=None, notice=None) -> list[dict]:
     """Finish the training of a sharded run if needed, then sample its shards (start and resume).
 
-    ``notice`` hears of damage recovered from in the training run (:func:`~hopwell.sampling.run.resume_run`);
-    a shard's is written to its own progress log.
+    ``notice`` hears of damage recovered from in the training run (:func:`~hopwell.sampling.run.resume_run`)
+    and in each shard (also written to the shard's own progress log).
     """
     from hopwell.sampling.run import resume_run
     from hopwell.sampling.sampler import Budget
@@ -321,7 +334,7 @@ def train_then_shard(run_dir: Path, workers: int | None = None, scheduler: str |
     state = RunStore.open(run_dir).read_state()
     if state is None or int(state["training_end_cycle"]) < 0:
         resume_run(Path(run_dir), Budget(training_only=True), progress, notice=notice)
-    return run_shards(run_dir, workers, scheduler, budget)
+    return run_shards(run_dir, workers, scheduler, budget, notice)
 
 
 def shard_status(run_dir: Path) -> list[dict]:
