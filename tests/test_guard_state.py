@@ -124,8 +124,10 @@ def test_cli_refuses_a_clashing_input_structure_before_making_a_run(tmp_path):
     conf = mol.GetConformer()
     h_first = next(n.GetIdx() for n in mol.GetAtomWithIdx(0).GetNeighbors() if n.GetAtomicNum() == 1)
     h_last = next(n.GetIdx() for n in mol.GetAtomWithIdx(3).GetNeighbors() if n.GetAtomicNum() == 1)
-    # A hydrogen of C1 put 0.9 A from one of C4's (five bonds apart; clash below 1.32 A).
-    target = np.array(conf.GetAtomPosition(h_last)) + np.array([0.9, 0.0, 0.0])
+    # A hydrogen of C1 put 0.9 A from one of C4's (five bonds apart; clash below 1.32 A), on
+    # the line towards C1 so that its bond to C1 stays shorter than inputs.MAX_BOND_A.
+    last, c1 = np.array(conf.GetAtomPosition(h_last)), np.array(conf.GetAtomPosition(0))
+    target = last + 0.9 * (c1 - last) / np.linalg.norm(c1 - last)
     conf.SetAtomPosition(h_first, target.tolist())
     sdf = tmp_path / "butane.sdf"
     writer = Chem.SDWriter(str(sdf))

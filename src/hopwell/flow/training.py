@@ -24,6 +24,7 @@ from hopwell.coords.torsions import (
     rotatable_rows,
     stiff_rows,
 )
+from hopwell.errors import InputError
 from hopwell.flow.torsion import TorsionFlow
 
 CHECK_ROWS = 512  # newest buffer rows on which a refit is judged
@@ -111,7 +112,8 @@ class FlowTrainer:
         rotatable = rotatable_rows(zmat, self.all_moving)
         self.moving = rotatable if settings.flow_torsions == "rotatable" and len(rotatable) else self.all_moving
         if len(self.moving) == 0:
-            raise ValueError("the molecule has no torsion about an acyclic bond to sample")
+            raise InputError("the molecule has no torsion about an acyclic bond, so no conformers to"
+                             " sample; hopwell energy gives the energy of its one structure")
         stiff = stiff_rows(zmat, mol, self.moving)
         self.flow_columns = (np.arange(len(self.moving)) if settings.flow_stiff_torsions or stiff.all()
                              else np.flatnonzero(~stiff))

@@ -9,13 +9,17 @@ from __future__ import annotations
 
 import io
 import logging
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 from rdkit import Chem, rdBase
+from scipy.spatial import cKDTree
 
-from hopwell.errors import InputError
+from hopwell.errors import InputError, printable
+from hopwell.systems.pdb_records import check_pdb_atoms
+from hopwell.systems.textfile import read_text_file
 
 # Size limit: the MMFF port places one explicit pair term per non-bonded pair (O(N^2)) and the
 # flow's Z-matrix grows with N; beyond a few hundred atoms an overnight CPU run cannot converge
@@ -24,6 +28,12 @@ MAX_ATOMS = 300
 # Atoms closer than this in a given structure are called overlapping (Angstrom). The shortest
 # real bond, H-H, is 0.74 Angstrom (common-practice fact).
 MIN_ATOM_DISTANCE_A = 0.5
+# Coordinates beyond this (Angstrom) are refused: PDB's coordinate columns end at 9999.999, and
+# a molecule of MAX_ATOMS atoms spans a few hundred Angstrom at most.
+MAX_COORDINATE_A = 1e4
+# Bonded atoms farther apart than this (Angstrom) mean the coordinates do not fit the bonds: the
+# longest common covalent bond, I-I, is 2.7 Angstrom (common-practice fact).
+MAX_BOND_A = 4.0
 
 PEPTIDE_RESIDUES = frozenset(
     "ACE NME ALA ARG ASN ASP ASH CYS CYX GLN GLU GLH GLY HIS HID HIE HIP ILE LEU LYS LYN MET "
@@ -76,23 +86,38 @@ def read_input(
     -------
     ParsedInput
     """
+    with _rdkit_log():  # RDKit's warnings stay off stderr; those that matter become InputErrors
+        parsed = _read(spec, template, add_hydrogens, pick_isomer)
+        check_molecule(parsed.mol, parsed.source)
+    return parsed
+
+
+def _read(spec: str, template: str | None, add_hydrogens: bool, pick_isomer: bool) -> ParsedInput:
     path = Path(spec)
     suffix = path.suffix.lower()
     if suffix in {".sdf", ".mol", ".mol2", ".pdb"}:
-        if not path.is_file():
+        if not _found(path, file_only=True):
             raise InputError(f"{spec}: no such file")
-        text = path.read_text(errors="replace")
+        source = printable(path.name)  # also the summary's "source": printed, written as TOML
+        text = read_text_file(path, source)
         if suffix == ".pdb":
-            parsed = _read_pdb(text, path.name, template)
-        else:
-            mols = _sdf_records(text) if suffix in {".sdf", ".mol"} else _mol2_records(text)
-            parsed = _combine_records(mols, path.name, add_hydrogens)
-    elif path.suffix and path.exists():
+            return _read_pdb(text, source, template)
+        mols = _sdf_records(text) if suffix in {".sdf", ".mol"} else _mol2_records(text)
+        return _combine_records(mols, source, add_hydrogens)
+    if path.suffix and _found(path, file_only=False):
         raise InputError(f"{spec}: unknown file type {path.suffix!r}; use .sdf, .mol, .mol2 or .pdb")
-    else:
-        parsed = _read_smiles(spec, pick_isomer)
-    check_molecule(parsed.mol, parsed.source)
-    return parsed
+    return _read_smiles(spec, pick_isomer)
+
+
+def _found(path: Path, file_only: bool) -> bool:
+    """Whether ``path`` names a file (or anything, when not ``file_only``).
+
+    A name the system cannot look up (longer than a file name may be) names nothing.
+    """
+    try:
+        return path.is_file() if file_only else path.exists()
+    except OSError:
+        return False
 
 
 def check_molecule(mol: Chem.Mol, source: str) -> None:
@@ -111,18 +136,49 @@ def check_molecule(mol: Chem.Mol, source: str) -> None:
     radicals = [a.GetIdx() for a in mol.GetAtoms() if a.GetNumRadicalElectrons()]
     if radicals:
         raise InputError(f"{source}: radical at atom {radicals[0] + 1}; give a closed-shell molecule")
+    bonds = np.array([(b.GetBeginAtomIdx(), b.GetEndAtomIdx()) for b in mol.GetBonds()], dtype=int)
     for conf in mol.GetConformers():
         xyz = conf.GetPositions()
-        if not np.all(np.isfinite(xyz)):
-            raise InputError(f"{source}: structure {conf.GetId() + 1} has non-finite coordinates")
-        diff = xyz[:, None, :] - xyz[None, :, :]
-        dist = np.sqrt((diff**2).sum(-1)) + np.eye(n_atoms) * 1e9
-        i, j = np.unravel_index(np.argmin(dist), dist.shape)
-        if dist[i, j] < MIN_ATOM_DISTANCE_A:
-            raise InputError(
-                f"{source}: structure {conf.GetId() + 1} has atoms {i + 1} and {j + 1}"
-                f" {dist[i, j]:.2f} A apart (overlapping)"
-            )
+        check_coordinates(xyz, f"{source}: structure {conf.GetId() + 1}")
+        if len(bonds):
+            lengths = np.linalg.norm(xyz[bonds[:, 0]] - xyz[bonds[:, 1]], axis=1)
+            k = int(np.argmax(lengths))
+            if lengths[k] > MAX_BOND_A:
+                raise InputError(
+                    f"{source}: structure {conf.GetId() + 1} has bonded atoms {bonds[k, 0] + 1} and"
+                    f" {bonds[k, 1] + 1} {lengths[k]:.3g} A apart; the coordinates do not fit the bonds"
+                )
+
+
+def check_coordinates(xyz: np.ndarray, where: str) -> None:
+    """Refuse non-finite, far-out (beyond :data:`MAX_COORDINATE_A`) and overlapping atoms.
+
+    Parameters
+    ----------
+    xyz : numpy.ndarray
+        One structure, shape ``(n_atoms, 3)``, Angstrom.
+    where : str
+        Names the structure in messages.
+
+    Raises
+    ------
+    InputError
+    """
+    if not np.all(np.isfinite(xyz)):
+        atom = int(np.argmin(np.isfinite(xyz).all(axis=1)))
+        raise InputError(f"{where} has non-finite coordinates at atom {atom + 1}")
+    far = np.abs(xyz).max(axis=1)
+    if len(xyz) and far.max() > MAX_COORDINATE_A:
+        raise InputError(f"{where} has atom {int(np.argmax(far)) + 1} at a coordinate of"
+                         f" {far.max():.3g} A; coordinates are in Angstrom, within +-{MAX_COORDINATE_A:g}")
+    if len(xyz) < 2:
+        return
+    dist, nearest = cKDTree(xyz).query(xyz, k=2)  # each atom itself and its nearest other atom
+    i = int(np.argmin(dist[:, 1]))
+    if dist[i, 1] < MIN_ATOM_DISTANCE_A:
+        j = int(nearest[i, 0] if nearest[i, 1] == i else nearest[i, 1])  # two atoms on one point
+        i, j = sorted((i, j))
+        raise InputError(f"{where} has atoms {i + 1} and {j + 1} {dist[i, 1]:.2f} A apart (overlapping)")
 
 
 def unspecified_stereo(mol: Chem.Mol) -> list[str]:
@@ -145,11 +201,18 @@ class _Collect(logging.Handler):
         self.messages: list[str] = []
 
     def emit(self, record):
-        self.messages.append(record.getMessage())
+        self.messages.append(record.getMessage().split("]", 1)[-1].strip())  # no timestamp
 
 
-def _quiet_parse(fn, *args, **kwargs):
-    """Run an RDKit parser with its log collected; return (result, last log message)."""
+@contextmanager
+def _rdkit_log():
+    """Collect RDKit's log messages, instead of printing them, while the block runs.
+
+    Yields
+    ------
+    list of str
+        The messages, timestamps removed, filled in as they come.
+    """
     logger = logging.getLogger("rdkit")
     handler = _Collect()
     rdBase.LogToPythonLogger()
@@ -157,16 +220,30 @@ def _quiet_parse(fn, *args, **kwargs):
     logger.handlers[:] = [handler]  # RDKit installs its own stderr handler: hold it aside
     logger.propagate = False
     try:
-        result = fn(*args, **kwargs)
+        yield handler.messages
     finally:
         logger.handlers[:], logger.propagate = saved
-    last = handler.messages[-1] if handler.messages else ""
-    return result, last.split("]", 1)[-1].strip()
+
+
+def _quiet_parse(fn, *args, **kwargs):
+    """Run an RDKit parser with its log collected.
+
+    Returns the result and the message that says most: the first ``ERROR:`` line (later ones
+    say only that the parser moved on), else the last line, else ''.
+    """
+    with _rdkit_log() as messages:
+        result = fn(*args, **kwargs)
+    errors = [m for m in messages if m.startswith("ERROR:")]
+    return result, (errors or messages[-1:] or [""])[0]
 
 
 def _read_smiles(smiles: str, pick_isomer: bool) -> ParsedInput:
     if not smiles.strip() or any(c.isspace() for c in smiles.strip()):
         raise InputError(f"{smiles!r} is neither a structure file nor a SMILES string")
+    odd = next((k for k, c in enumerate(smiles) if not (c.isascii() and c.isprintable())), None)
+    if odd is not None:  # SMILES is printable ASCII; RDKit fails on undecodable bytes
+        raise InputError(f"SMILES {smiles!r} has {ascii(smiles[odd])} at position {odd + 1};"
+                         " a SMILES string is printable ASCII")
     mol, why = _quiet_parse(Chem.MolFromSmiles, smiles.strip())
     if mol is None:
         raise InputError(f"cannot parse SMILES {smiles!r}: {why or 'invalid'}")
@@ -199,11 +276,22 @@ def _sdf_records(text: str) -> list[tuple[Chem.Mol | None, str]]:
 
 
 def _mol2_records(text: str) -> list[tuple[Chem.Mol | None, str]]:
-    blocks = text.split("@<TRIPOS>MOLECULE")[1:]
-    return [
-        _quiet_parse(Chem.MolFromMol2Block, "@<TRIPOS>MOLECULE" + b, removeHs=False)
-        for b in blocks
-    ]
+    return [_mol2_record(block) for block in text.split("@<TRIPOS>MOLECULE")[1:]]
+
+
+def _mol2_record(block: str) -> tuple[Chem.Mol | None, str]:
+    """One MOL2 molecule (the text after ``@<TRIPOS>MOLECULE``), or None and why not.
+
+    The atom count is checked first: RDKit reserves memory for the count it is given, and a
+    count of -1 or 4e9 asked it for some 16 GB.
+    """
+    lines = block.split("\n")
+    count = lines[2].split()[0] if len(lines) > 2 and lines[2].split() else ""
+    if not (count.isascii() and count.isdigit()):
+        return None, f"the counts line must begin with the number of atoms, not {count!r}"
+    if not 1 <= int(count) <= MAX_ATOMS:
+        return None, f"the counts line gives {int(count)} atoms; hopwell reads 1 to {MAX_ATOMS}"
+    return _quiet_parse(Chem.MolFromMol2Block, "@<TRIPOS>MOLECULE" + block, removeHs=False)
 
 
 def _combine_records(records, source: str, add_hydrogens: bool) -> ParsedInput:
@@ -290,10 +378,17 @@ def _read_peptide(text: str, source: str) -> ParsedInput:
 
     from hopwell.systems.amber import amber_forcefield, amber_net_charge
 
+    check_pdb_atoms(text, source)
     try:
         pdb = app.PDBFile(io.StringIO(text))
     except Exception as exc:  # OpenMM raises bare Exception/ValueError/KeyError on bad PDB
         raise InputError(f"{source}: cannot read PDB: {exc}") from None
+    n_atoms = pdb.topology.getNumAtoms()
+    if n_atoms > MAX_ATOMS:
+        raise InputError(f"{source}: {n_atoms} atoms exceeds the limit of {MAX_ATOMS}")
+    for frame in range(pdb.getNumFrames()):  # before hydrogens are placed from these positions
+        xyz = np.asarray(pdb.getPositions(asNumpy=True, frame=frame).value_in_unit(unit.angstrom))
+        check_coordinates(xyz, f"{source}: model {frame + 1}")
     modeller = app.Modeller(pdb.topology, pdb.positions)
     has_h = any(a.element is not None and a.element.symbol == "H" for a in pdb.topology.atoms())
     if not has_h:
