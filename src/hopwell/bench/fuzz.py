@@ -60,7 +60,7 @@ from hopwell.bench.damage import FORMATS, FuzzInput, fuzz_inputs
 
 COMMANDS = ("build", "energy", "run")
 OUTCOMES = ("ok", "clean error", "traceback", "messy error", "bad result", "crash", "hang", "memory")
-# Peak resident memory (MB) past which a case fails: measured here, a case takes 0.3-0.6 GB.
+# Peak resident memory (MB) past which a case fails: measured here, cases peak at 0.1-0.45 GB.
 MAX_RSS_MB = 2000.0
 PASSING = ("ok", "clean error")
 COMMON_OPTIONS = ("--seeds", "4")

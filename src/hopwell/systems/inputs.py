@@ -242,7 +242,7 @@ def _read_smiles(smiles: str, pick_isomer: bool) -> ParsedInput:
         raise InputError(f"{smiles!r} is neither a structure file nor a SMILES string")
     odd = next((k for k, c in enumerate(smiles) if not (c.isascii() and c.isprintable())), None)
     if odd is not None:  # SMILES is printable ASCII; RDKit fails on undecodable bytes
-        raise InputError(f"SMILES {smiles!r} has {ascii(smiles[odd])} at position {odd + 1};"
+        raise InputError(f"SMILES {smiles!r} has {smiles[odd]!a} at position {odd + 1};"
                          " a SMILES string is printable ASCII")
     mol, why = _quiet_parse(Chem.MolFromSmiles, smiles.strip())
     if mol is None:
