@@ -48,25 +48,23 @@ def hamiltonian_log_weights(store: RunStore, overrides: dict, temperature_K: flo
                             energy_kj: np.ndarray) -> np.ndarray:
     """log w = -(U' - U)/kT with U' from the same input built with ``overrides``.
 
-    The production positions are re-read chunk by chunk from the stores, and in the order, the
-    report gathers them (the shards of a sharded run; chunks that do not load skipped, as
-    :func:`hopwell.analysis.production.gather_run` skips them), so the weights line up with
-    ``energy_kj``.
+    The production positions are re-read chunk by chunk in the order the report gathers them
+    (:func:`~hopwell.sampling.shards.iter_pooled_chunks`: a sharded run's shards too, damaged
+    chunks skipped), so the weights line up with ``energy_kj``.
     """
-    from hopwell.sampling.shards import shard_stores
+    from hopwell.sampling.shards import iter_pooled_chunks
 
     config = store.config()
     options = replace(BuildOptions(**config["build"]), **overrides)
     molsys = build(config["input"], options)
     evaluator = EnergyEvaluator(molsys.system, temperature_K)
     new = []
-    for source in [shard for shard, _ in shard_stores(store.path)] or [store]:
-        for chunk in source.iter_chunks(damaged=[]):
-            if chunk["state_positions_nm"].shape[1] != evaluator.n_atoms:
-                raise InputError("the reweighting system has a different number of atoms from the run")
-            keep = chunk["state_production"].astype(bool)
-            if keep.any():
-                new.append(evaluator.energies_kj(chunk["state_positions_nm"][keep].astype(float)))
+    for chunk in iter_pooled_chunks(store):
+        if chunk["state_positions_nm"].shape[1] != evaluator.n_atoms:
+            raise InputError("the reweighting system has a different number of atoms from the run")
+        keep = chunk["state_production"].astype(bool)
+        if keep.any():
+            new.append(evaluator.energies_kj(chunk["state_positions_nm"][keep].astype(float)))
     new_kj = np.concatenate(new)
     if len(new_kj) != len(energy_kj):
         raise ValueError("reweighting energies and production samples are misaligned")

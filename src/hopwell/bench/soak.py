@@ -35,13 +35,13 @@ import subprocess
 import sys
 import tempfile
 import time
-import tomllib
 from collections import Counter
 from pathlib import Path
 
 import numpy as np
 
 from hopwell.bench import print_table
+from hopwell.sampling.files import DamagedFile, read_npz, read_weights
 from hopwell.sampling.store import MOVE_FLOW, MOVE_LANGEVIN, RunStore
 
 PHASES = ("start-up", "training", "switch", "production", "chunk", "checkpoint", "report")
@@ -51,10 +51,10 @@ POLL_S = 0.001
 
 
 def _state(run_dir: Path) -> dict | None:
+    """The checkpoint's arrays now, or None while there is none (or it is being replaced)."""
     try:
-        with np.load(run_dir / "state.npz", allow_pickle=False) as data:
-            return {k: data[k] for k in ("cycle", "training_end_cycle", "production_samples")}
-    except (FileNotFoundError, OSError, ValueError, KeyError):
+        return read_npz(run_dir / "state.npz")
+    except DamagedFile:
         return None
 
 
@@ -99,20 +99,15 @@ def kill_during(proc: subprocess.Popen, run_dir: Path, phase: str, delay_s: floa
 
 
 def check_whole(run_dir: Path) -> None:
-    """Every file under its final name loads whole (raises otherwise)."""
-    import torch
-
+    """Every file under its final name loads whole (raises DamagedFile otherwise)."""
     store = RunStore(run_dir)
     if (run_dir / "run.toml").exists():
-        tomllib.loads((run_dir / "run.toml").read_text())
+        store.config()
     if (run_dir / "chunks").is_dir():
-        for index in store.chunk_indices():
-            with np.load(store.chunk_path(index), allow_pickle=False) as data:
-                [data[k] for k in data.files]
+        for _ in store.iter_chunks():  # without ``damaged``, the first bad chunk raises
+            pass
     if (run_dir / "state.npz").exists():
-        with np.load(run_dir / "state.npz", allow_pickle=False) as data:
-            flow = str(data["flow_file"])
-        torch.load(run_dir / flow, weights_only=True)
+        read_weights(run_dir / str(read_npz(run_dir / "state.npz")["flow_file"]))
 
 
 def record_keys(run_dir: Path) -> tuple[Counter, int, int]:
@@ -151,9 +146,8 @@ def populations(run_dir: Path, model=None) -> tuple[dict, object]:
     from hopwell.analysis.summary import analyse
 
     summary = analyse(run_dir, n_boot=400, model=model)
-    if model is None and summary["state_model"] == "torsions":
+    if model is None and summary["state_model"] == "torsions":  # the model analyse built
         model = st.torsion_model(summary["_molecule"], summary["_dihedrals"])
-        summary = analyse(run_dir, n_boot=400, model=model)
     return {s["name"]: (s["population"], *s["ci95"]) for s in summary["states"]}, model
 
 
@@ -225,7 +219,7 @@ def soak(spec: str, kills: int, run_args: list[str], work: Path, seed: int) -> d
                    stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     soaked_populations, model = populations(run_dir)
     reference_populations, _ = populations(reference, model)
-    walkers = int(tomllib.loads((run_dir / "run.toml").read_text())["walkers"])
+    walkers = int(RunStore(run_dir).config()["walkers"])
     keys, cycles, production = record_keys(run_dir)
     lost, doubled = lost_and_doubled(keys, cycles, walkers)
     _, ref_cycles, ref_production = record_keys(reference)
