@@ -49,10 +49,10 @@ def assign_wells(phi_rad: np.ndarray) -> np.ndarray:
 #: streams draws again. Family-wise checks therefore stretch each interval about its estimate
 #: from 1.96 to 3 standard errors (two-sided 0.27% per well, under 1% for three by the
 #: Bonferroni bound). Measured on the one-well flow run of tests/test_sampler_exact.py (26 000
-#: samples): over 10 seeds without darts the -60 well's estimates lay within 1.6 standard errors
-#: of the quadrature value (spread 0.0031 against an implied 0.0036), and over 12 seeds with the
-#: probes' darts within 2.0 but for one at +3.3 (seed 1); their mean, 0.1992 +- 0.0014, is
-#: the quadrature's 0.1993 within its error.
+#: samples, `python -m hopwell.bench.chain_seeds`): over 10 seeds without darts the -60 well's
+#: estimates lay within 1.6 standard errors of the quadrature value (spread 0.0031 against an
+#: implied 0.0036), and over 12 seeds with the probes' darts within 2.0 but for one at +3.3
+#: (seed 1); their mean, 0.1992 +- 0.0014, is the quadrature's 0.1993 within its error.
 FAMILY_STRETCH = 3.0 / 1.96
 
 

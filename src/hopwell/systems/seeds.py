@@ -13,7 +13,8 @@ DEDUP_RMSD_A = 0.5
 # each rotatable bond (the method finds no basin it was never shown). Chosen, not measured
 # against missed basins: 30 + 30 per rotatable bond, at most 300. Measured here: 300 embeddings
 # of a 10-rotor ligand (VLT-308 of systems/ligands) took 21 s to embed and minimize and 4 s to
-# de-duplicate, leaving 229 distinct seeds (30 embeddings: 2 s, 30 seeds).
+# de-duplicate, leaving 229 distinct seeds (30 embeddings: 2 s, 30 seeds); the command is in
+# DEVELOPERS.md ("Seeding grows with flexibility").
 SEEDS_BASE, SEEDS_PER_ROTATABLE, SEEDS_CAP = 30, 30, 300
 
 
