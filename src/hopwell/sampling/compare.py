@@ -39,7 +39,7 @@ from hopwell.errors import InputError
 from hopwell.sampling.store import RunStore
 
 METHODS = ("flow", "md", "remd")
-TIME_POINTS = 24  # points of the running estimates over the budget
+TIME_POINTS = 120  # points of the running estimates over the budget (10 s apart over 20 minutes)
 TRAINING_SHARE = 0.3  # as `hopwell run --hours`: the flow trains for this share of the budget
 ERROR_FLOOR_POINTS = 0.01  # errors are drawn on a log axis, clipped below at this
 
