@@ -83,7 +83,7 @@ def test_darts_alone_match_quadrature(tmp_path):
     seeds = np.stack([chain_positions_nm(p) for p in (-60.0, 60.0, 180.0)])
     store = new_store(tmp_path / "run", settings)
     sampler = Sampler(chain_mol(), chain_system(), seeds, settings, store, n_walkers=3, platform="Reference")
-    assert sampler.seed_darts.darts.n_centres == 3
+    assert sampler.basins.darts.darts.n_centres == 3
     sampler.run(Budget(samples=6000))
     assert sampler.stats["dart"].accepted > 100
     series = [assign_wells(dihedrals_rad(x)) for x in production_positions(store, 3)]

@@ -75,9 +75,9 @@ def _one_well_run(tmp_path, probes: int, samples: int):
 def test_probes_find_the_unseeded_wells_and_the_populations_match_quadrature(tmp_path):
     exact = exact_populations()  # scipy.integrate.quad of exp(-V/kT) per well (chain_systems.py)
     sampler, store, result = _one_well_run(tmp_path, probes=1, samples=6000)
-    assert sampler.seed_darts is not None and sampler.seed_darts.darts.n_centres == 3
-    assert len(sampler.found_basins) == 2 and not any(b.production for b in sampler.found_basins)
-    found_wells = sorted(int(assign_wells(dihedrals_rad(b.positions_nm[None]))[0]) for b in sampler.found_basins)
+    assert sampler.basins.darts is not None and sampler.basins.darts.darts.n_centres == 3
+    assert len(sampler.basins.found) == 2 and not any(b.production for b in sampler.basins.found)
+    found_wells = sorted(int(assign_wells(dihedrals_rad(b.positions_nm[None]))[0]) for b in sampler.basins.found)
     assert found_wells == [0, 1]  # the -60 and 60 wells
     assert family_covers(result.populations, result.lower, result.upper, exact), (result.populations, exact)  # chain_systems.FAMILY_STRETCH
     # The finds survive the checkpoint, and a resumed sampler reads them back.
@@ -89,7 +89,7 @@ def test_probes_find_the_unseeded_wells_and_the_populations_match_quadrature(tmp
 def test_without_probes_the_one_well_run_misses_the_other_wells(tmp_path):
     exact = exact_populations()
     sampler, _, result = _one_well_run(tmp_path, probes=0, samples=1500)
-    assert sampler.seed_darts is None and not sampler.found_basins
+    assert sampler.basins.darts is None and not sampler.basins.found
     assert not np.all((result.lower <= exact) & (exact <= result.upper))
 
 

@@ -269,7 +269,7 @@ def _progress_printer(budget):
             return (f"cycle {sampler.cycle}: exchanges {sampler.stats['exchange'].recent_acceptance():.2f}"
                     f" accepted; {sampler.production_samples} samples")
         darts = f", darts {sampler.stats['dart'].acceptance():.2f}" if sampler.stats["dart"].proposed else ""
-        basins = sampler.basin_populations()
+        basins = sampler.basins.populations()
         shares = "" if basins is None else (
             "; seed basins " + "/".join(f"{100 * p:.0f}" for p in basins[:-1]) + f"% (outside {100 * basins[-1]:.0f}%)")
         return (f"{phase} cycle {sampler.cycle}: one-torsion {sampler.stats['single'].acceptance():.2f},"

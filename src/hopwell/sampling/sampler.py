@@ -33,21 +33,19 @@ import torch
 from rdkit import Chem
 
 from hopwell.coords.guards import ProposalGuard, refuse_failing_seeds
-from hopwell.coords.internal import build_zmatrix, cartesian_to_internal
+from hopwell.coords.internal import build_zmatrix
+from hopwell.errors import InputError
 from hopwell.flow.training import FlowTrainer
 from hopwell.moves.base import MoveCounters, RandomStreams, Walkers
-from hopwell.coords.torsions import rotatable_rows
-from hopwell.moves.darts import SeedDarts, build_darts, region_rows, rows_placing, rows_within
 from hopwell.moves.flow_block import FlowBlock
 from hopwell.moves.langevin import LangevinSegment
 from hopwell.moves.one_torsion import OneTorsion
-from hopwell.sampling.probes import BasinProbe, FoundBasin
+from hopwell.sampling.basins import KnownBasins
 from hopwell.sampling.records import ChunkQueue, Snapshot
 from hopwell.sampling.settings import Budget, SamplerSettings
 from hopwell.sampling.store import MOVE_FLOW, MOVE_LANGEVIN, RunStore
 from hopwell.systems.builder import rotatable_bonds
-from hopwell.systems.energy import EnergyEvaluator, kT_kj
-from hopwell.systems.rings import saturated_six_rings
+from hopwell.systems.energy import EnergyEvaluator
 
 
 class Sampler:
@@ -75,22 +73,17 @@ class Sampler:
             mol.GetNumAtoms(), [(b.GetBeginAtomIdx(), b.GetEndAtomIdx()) for b in mol.GetBonds()],
             heavy=[a.GetAtomicNum() > 1 for a in mol.GetAtoms()], rotatable=rotatable_bonds(mol))
         self.guard = ProposalGuard.from_mol(mol, seeds_nm[0])
-        # Saturated six-rings and their heavy substituents: the darts' pucker coordinates.
-        self.ring_atoms = [ring.atoms for ring in saturated_six_rings(mol)]
-        self.pucker_atoms = sorted({a for ring in saturated_six_rings(mol)
-                                    for a in ring.atoms + tuple(x for _, x in ring.substituents)})
         self.trainer = FlowTrainer(self.zmat, mol, seeds_nm, settings, settings.seed)
-        # The known basins: the minimized seeds and the probes' finds in training (the dart
-        # centres), then the finds in production; all kept in the checkpoint.
-        self.dart_centres_nm = None
-        if settings.method == "flow" and settings.darts_per_cycle > 0:
-            self.dart_centres_nm = self.evaluator.minimize(seeds_nm)
-        self.found_basins: list[FoundBasin] = []
+        darts = settings.method == "flow" and settings.darts_per_cycle > 0
+        self.basins = KnownBasins(self.zmat, self.trainer.all_moving, mol, self.guard, settings,
+                                  self.evaluator.minimize(seeds_nm) if darts else None)
         n_walkers = n_walkers or len(seeds_nm)
         positions = np.stack([seeds_nm[k % len(seeds_nm)] for k in range(n_walkers)])
         self.walkers = Walkers(positions, self.evaluator.energies_kj(positions))
-        if not np.all(np.isfinite(self.walkers.energies_kj)):
-            raise ValueError("a seed structure has a non-finite energy")
+        bad = np.flatnonzero(~np.isfinite(self.walkers.energies_kj))
+        if len(bad):
+            raise InputError(f"seed structure {int(bad[0]) % len(seeds_nm) + 1} has a non-finite energy"
+                             " (overlapping atoms?); fix or drop it")
         refuse_failing_seeds(self.guard, seeds_nm)  # walkers start from the seeds in turn
         self._build_moves()
         self.cycle, self.training_end_cycle, self.elapsed_s = 0, -1, 0.0
@@ -115,27 +108,7 @@ class Sampler:
         self.local = LangevinSegment(self._segment_evaluators(), s.langevin_steps, self._log, guard=self.guard)
         self.flow_move = FlowBlock(self.trainer, self.guard, self.evaluator, s.proposals_per_cycle)
         self.one_torsion = OneTorsion(self.trainer, self.guard, self.evaluator, s.single_moves_per_cycle)
-        self._build_darts()
-        pucker_rows = rows_placing(self.zmat, self.pucker_atoms)
-        self.basin_probe = (BasinProbe(self.zmat, rotatable_rows(self.zmat, self.trainer.all_moving),
-                                       region_rows(self.zmat, self.trainer.all_moving, pucker_rows), self.guard,
-                                       self.evaluator, s, kT_kj(s.temperature_K))
-                            if self.dart_centres_nm is not None and s.probes_per_cycle + s.probe_every_production > 0
-                            else None)  # the dart centres are the known basins
-
-    def _build_darts(self) -> None:
-        """The seed darts over the current dart centres (their counters kept when rebuilt)."""
-        old = getattr(self, "seed_darts", None)
-        darts = (build_darts(self.zmat, self.trainer.all_moving, self.dart_centres_nm,
-                             rows_placing(self.zmat, self.pucker_atoms),
-                             np.concatenate([rows_within(self.zmat, r) for r in self.ring_atoms] + [[]]).astype(int))
-                 if self.dart_centres_nm is not None else None)
-        self.seed_darts = (SeedDarts(darts, self.zmat, self.guard, self.evaluator, self.settings.darts_per_cycle)
-                           if darts else None)
-        if old is not None and self.seed_darts is not None:
-            self.seed_darts.counters = old.counters
-        # Production walker states per dart region (index 0: outside every region).
-        self.basin_counts = np.zeros(1 + (darts.n_centres if darts else 0), dtype=np.int64)
+        self.basins.build(self.evaluator)  # the seed darts and basin probes
 
     def _segment_evaluators(self) -> list[EnergyEvaluator]:
         """The evaluators the local segments run on: the sampler's, for every walker."""
@@ -143,8 +116,8 @@ class Sampler:
 
     @property
     def _all_moves(self) -> list:
-        """Every move built, scheduled or not: their counters are all checkpointed."""
-        return [self.local, self.flow_move, self.one_torsion] + ([self.seed_darts] if self.seed_darts else [])
+        """Every move built, scheduled or not, the darts and probe aside: their counters are checkpointed."""
+        return [self.local, self.flow_move, self.one_torsion]
 
     @property
     def moves(self) -> list:
@@ -154,13 +127,13 @@ class Sampler:
             return [self.local]
         return [self.local] + [m for m, on in ((self.flow_move, s.proposals_per_cycle),
                                                (self.one_torsion, s.single_moves_per_cycle),
-                                               (self.seed_darts, self.seed_darts is not None)) if on]
+                                               (self.basins.darts, self.basins.darts is not None)) if on]
 
     @property
     def stats(self) -> dict[str, MoveCounters]:
         """Every move's counters by checkpoint key (``training``/``production`` for the flow)."""
         return {**self.flow_move.counters, "single": self.one_torsion.counters,
-                "dart": self.seed_darts.counters if self.seed_darts else MoveCounters(),
+                "dart": self.basins.dart_counters,
                 "langevin": self.local.counters}
 
     @property
@@ -186,17 +159,6 @@ class Sampler:
                            f" training {self.stats['training'].acceptance():.3f}")
         self._set_phase()
 
-    def basin_populations(self) -> np.ndarray | None:
-        """Running share of production walker states in each seed's basin (dart region).
-
-        A progress indicator, not an estimate: regions are balls around the minimized seeds,
-        and the share outside all of them comes last. None without darts or samples yet.
-        """
-        total = self.basin_counts.sum()
-        if self.seed_darts is None or total == 0:
-            return None
-        return np.concatenate([self.basin_counts[1:], self.basin_counts[:1]]) / total
-
     def run_cycle(self) -> None:
         """One cycle over all walkers; queues the records for the next chunk.
 
@@ -221,7 +183,7 @@ class Sampler:
                     self.queue.add_proposals(result.proposals | {
                         "cycle": np.full(len(result.proposals["walker"]), self.cycle, np.int64)})
         after_all = self.snapshot()
-        self._probe()
+        self.basins.probe(self.walkers, self.cycle, production, self.streams.numpy, self._log)
         for walker in which:  # records in walker order, each walker's local state first
             self.queue.add_state(after_local, walker, self.cycle, MOVE_LANGEVIN, production)
             if others:
@@ -233,11 +195,7 @@ class Sampler:
                              .reshape(-1, *self.walkers.positions_nm.shape[1:]).astype(np.float32))
         else:
             self.production_samples += self.n_walkers * len(recorded)
-            if self.seed_darts is not None:  # running occupancy of the seeds' basins, for progress
-                with torch.no_grad():
-                    ic = cartesian_to_internal(self.zmat, torch.as_tensor(self.walkers.positions_nm))
-                self.basin_counts += np.bincount(self.seed_darts.darts.region(ic.torsions_rad.numpy()) + 1,
-                                                 minlength=len(self.basin_counts))
+            self.basins.count(self.walkers.positions_nm)  # running occupancy of the seeds' basins
         self.cycle += 1
         if not production and self.cycle % self.settings.fit_every == 0:
             self.trainer.fit(self.streams.numpy, self.streams.torch, self._log)
@@ -247,36 +205,12 @@ class Sampler:
         return Snapshot(self.walkers.positions_nm.copy(), self.walkers.energies_kj.copy(),
                         self.elapsed_s + time.perf_counter() - self._cycle_start)
 
-    def _probe(self) -> None:
-        """This cycle's basin probes; a find in training becomes a dart centre."""
-        s = self.settings
-        if self.basin_probe is None:
-            return
-        n = (s.probes_per_cycle if not self.production else
-             int(s.probe_every_production > 0 and self.cycle % s.probe_every_production == 0))
-        for _ in range(n):
-            known = np.concatenate([self.dart_centres_nm] + [b.positions_nm[None] for b in self.found_basins
-                                                              if b.production])
-            known_kj = self.evaluator.energies_kj(known)
-            walker = int(self.streams.numpy.integers(self.n_walkers))
-            found = self.basin_probe.probe(self.walkers.positions_nm[walker], known, known_kj, self.streams.numpy)
-            if found is None:
-                continue
-            positions_nm, energy_kj = found
-            lowest = float(known_kj.min())
-            self.found_basins.append(FoundBasin(self.cycle, self.production, energy_kj, energy_kj - lowest, positions_nm))
-            self._log(f"probe found a basin {energy_kj - lowest:.1f} kJ/mol above the lowest known minimum"
-                      + (" in production: no move targets it" if self.production else "; it is a dart centre now"))
-            if not self.production:
-                self.dart_centres_nm = np.concatenate([self.dart_centres_nm, positions_nm[None]])
-                self._build_darts()
-
     # -- persistence ----------------------------------------------------------------------
     def _counters_json(self) -> dict:
-        out = {"dart": MoveCounters().to_json()}
+        out = self.basins.state_dict()
         for move in self._all_moves:
             out.update(move.state_dict())
-        return out | (self.basin_probe.state_dict() if self.basin_probe else {})
+        return out
 
     def flush(self) -> None:
         """Write queued cycles as one chunk, then the checkpoint that counts it."""
@@ -296,11 +230,7 @@ class Sampler:
             "flow_file": np.str_(flow_path.name),
             **self.streams.state_arrays(),
             "stats": np.str_(json.dumps(self._counters_json())),
-            **({} if self.dart_centres_nm is None else {"dart_centres_nm": self.dart_centres_nm,
-                                                        "basin_counts": self.basin_counts}),
-            **({} if not self.found_basins else {
-                "found_basins": np.str_(json.dumps([b.as_dict() for b in self.found_basins])),
-                "found_positions_nm": np.stack([b.positions_nm for b in self.found_basins])}),
+            **self.basins.state_arrays(),
         })
         self.store.prune_flows()
 
@@ -326,15 +256,10 @@ class Sampler:
         # Fresh noise: the integrator's seed is fixed when its context is made, so a resumed run
         # would otherwise replay the Langevin noise of the run's start.
         self.evaluator = self._evaluator(self.settings.temperature_K, self.evaluator.platform.getName())
-        if "dart_centres_nm" in state:  # the first start's centres, not a re-minimization
-            self.dart_centres_nm = np.array(state["dart_centres_nm"])
+        self.basins.load_state_arrays(state)
         self._build_moves()
-        if "basin_counts" in state:
-            self.basin_counts = np.array(state["basin_counts"])
-        self.found_basins = [FoundBasin(**found, positions_nm=x) for found, x in zip(
-            json.loads(str(state.get("found_basins", "[]"))), state.get("found_positions_nm", []))]
         counters = json.loads(str(state["stats"]))
-        for move in self._all_moves + ([self.basin_probe] if self.basin_probe else []):
+        for move in self._all_moves + [self.basins]:
             move.load_state_dict(counters)
         self._set_phase()
         if not self.production:  # rebuild the training buffer from the recorded training states
