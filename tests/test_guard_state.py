@@ -242,3 +242,15 @@ def test_guard_failures_and_rollbacks_are_warnings_and_only_when_nonzero():
     assert [w for w in rolled if w not in clean] == [
         ("2 of 100 Langevin segments were rolled back after an energy explosion (a veto after the fact"
          " biases the chain)")]
+
+
+@pytest.mark.parametrize("smiles", ["C", "c1ccccc1"])
+def test_cli_refuses_a_molecule_without_a_torsion_before_making_a_run(tmp_path, smiles):
+    # Methane and benzene have no torsion about an acyclic bond: nothing to sample.
+    out = tmp_path / "run"
+    result = CliRunner().invoke(main, ["run", smiles, "-o", str(out), "--samples", "10",
+                                       "--platform", "Reference"])
+    assert result.exit_code == 2, result.output
+    lines = result.output.strip().splitlines()
+    assert len(lines) == 1 and "no torsion about an acyclic bond" in lines[0], result.output
+    assert not out.exists()

@@ -5,8 +5,25 @@ from __future__ import annotations
 import numpy as np
 from rdkit import Chem
 
-from hopwell.coords.internal import ZMatrix
-from hopwell.systems.builder import STIFF_BOND
+from hopwell.coords.internal import ZMatrix, build_zmatrix
+from hopwell.errors import InputError
+from hopwell.systems.builder import STIFF_BOND, rotatable_bonds
+
+
+def molecule_zmatrix(mol: Chem.Mol) -> ZMatrix:
+    """The Z-matrix of ``mol`` (explicit hydrogens) from its bond graph, rotatable bonds preferred."""
+    return build_zmatrix(
+        mol.GetNumAtoms(), [(b.GetBeginAtomIdx(), b.GetEndAtomIdx()) for b in mol.GetBonds()],
+        heavy=[a.GetAtomicNum() > 1 for a in mol.GetAtoms()], rotatable=rotatable_bonds(mol))
+
+
+def refuse_rigid(zmat: ZMatrix, mol: Chem.Mol) -> np.ndarray:
+    """:func:`moving_torsions`, refused with one line when there is none (nothing to sample)."""
+    rows = moving_torsions(zmat, mol)
+    if len(rows) == 0:
+        raise InputError("the molecule has no torsion about an acyclic bond, so no conformers to"
+                         " sample; hopwell energy gives the energy of its one structure")
+    return rows
 
 
 def moving_torsions(zmat: ZMatrix, mol: Chem.Mol) -> np.ndarray:

@@ -20,11 +20,10 @@ from rdkit import Chem
 from hopwell.coords.internal import InternalCoords, ZMatrix, cartesian_to_internal
 from hopwell.coords.torsions import (
     context_angles,
-    moving_torsions,
+    refuse_rigid,
     rotatable_rows,
     stiff_rows,
 )
-from hopwell.errors import InputError
 from hopwell.flow.torsion import TorsionFlow
 
 CHECK_ROWS = 512  # newest buffer rows on which a refit is judged
@@ -108,12 +107,9 @@ class FlowTrainer:
         if settings.flow_torsions not in ("rotatable", "all"):
             raise ValueError(f"flow_torsions must be 'rotatable' or 'all', got {settings.flow_torsions!r}")
         self.zmat, self.settings = zmat, settings
-        self.all_moving = moving_torsions(zmat, mol)
+        self.all_moving = refuse_rigid(zmat, mol)
         rotatable = rotatable_rows(zmat, self.all_moving)
         self.moving = rotatable if settings.flow_torsions == "rotatable" and len(rotatable) else self.all_moving
-        if len(self.moving) == 0:
-            raise InputError("the molecule has no torsion about an acyclic bond, so no conformers to"
-                             " sample; hopwell energy gives the energy of its one structure")
         stiff = stiff_rows(zmat, mol, self.moving)
         self.flow_columns = (np.arange(len(self.moving)) if settings.flow_stiff_torsions or stiff.all()
                              else np.flatnonzero(~stiff))

@@ -13,6 +13,7 @@ from openmm import app
 from rdkit import Chem
 
 from hopwell.coords.guards import ProposalGuard, refuse_failing_seeds
+from hopwell.coords.torsions import molecule_zmatrix, refuse_rigid
 from hopwell.errors import InputError
 from hopwell.sampling.checkpoint import PREVIOUS_STATE_FILE, STATE_FILE, newest_good
 from hopwell.sampling.files import read_molecules, read_system
@@ -101,6 +102,7 @@ def start_run(spec: str, out_dir: Path, build_options: BuildOptions, settings: S
     if molsys is None:
         molsys = build(spec, build_options)
     # Refused here, before the run directory exists (the sampler checks again for other callers).
+    refuse_rigid(molecule_zmatrix(molsys.mol), molsys.mol)
     refuse_failing_seeds(ProposalGuard.from_mol(molsys.mol, molsys.seeds_nm[0]), molsys.seeds_nm)
     walkers = _walkers(settings, n_walkers, len(molsys.seeds_nm))
     config = {

@@ -33,7 +33,7 @@ import torch
 from rdkit import Chem
 
 from hopwell.coords.guards import ProposalGuard, refuse_failing_seeds
-from hopwell.coords.internal import build_zmatrix
+from hopwell.coords.torsions import molecule_zmatrix
 from hopwell.errors import InputError
 from hopwell.flow.training import FlowTrainer
 from hopwell.moves.base import MoveCounters, RandomStreams, Walkers
@@ -44,7 +44,6 @@ from hopwell.sampling.basins import KnownBasins
 from hopwell.sampling.records import ChunkQueue, Snapshot
 from hopwell.sampling.settings import Budget, SamplerSettings
 from hopwell.sampling.store import MOVE_FLOW, MOVE_LANGEVIN, RunStore
-from hopwell.systems.builder import rotatable_bonds
 from hopwell.systems.energy import EnergyEvaluator
 
 
@@ -69,9 +68,7 @@ class Sampler:
         self.settings, self.store, self.system = settings, store, system
         self.streams = RandomStreams.seeded(settings.seed)
         self.evaluator = self._evaluator(settings.temperature_K, platform)
-        self.zmat = build_zmatrix(
-            mol.GetNumAtoms(), [(b.GetBeginAtomIdx(), b.GetEndAtomIdx()) for b in mol.GetBonds()],
-            heavy=[a.GetAtomicNum() > 1 for a in mol.GetAtoms()], rotatable=rotatable_bonds(mol))
+        self.zmat = molecule_zmatrix(mol)
         self.guard = ProposalGuard.from_mol(mol, seeds_nm[0])
         self.trainer = FlowTrainer(self.zmat, mol, seeds_nm, settings, settings.seed)
         darts = settings.method == "flow" and settings.darts_per_cycle > 0
