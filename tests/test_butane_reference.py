@@ -15,12 +15,8 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
-import numpy as np
-from chain_systems import dihedrals_rad, production_positions
-
 import hopwell
-from hopwell.analysis.stats import population_estimate
-from hopwell.sampling.store import RunStore
+from hopwell.bench.against_mc import compare
 
 REFERENCE = Path(__file__).resolve().parents[1] / "systems" / "ligands" / "reference" / "n-butane_300K.json"
 
@@ -28,17 +24,12 @@ REFERENCE = Path(__file__).resolve().parents[1] / "systems" / "ligands" / "refer
 def test_butane_anti_population_matches_the_mmff_monte_carlo_reference(tmp_path):
     reference = json.loads(REFERENCE.read_text())
     assert reference["settings"]["temperature_K"] == 300.0 and reference["settings"]["force_field"] == "MMFF94"
-    (torsion,) = reference["torsions"]
-    quad = tuple(a - 1 for a in torsion["atoms_1based"])
-    anti_reference = torsion["pooled"]["anti"]
+    assert [t["atoms_1based"] for t in reference["torsions"]] == [[1, 2, 3, 4]]
 
     run = hopwell.sample("CCCC", tmp_path / "butane", samples=12000, temperature_K=300.0, training_cycles=60)
-    store = RunStore.open(run.path)
-    n_walkers = int(store.config()["walkers"])
-    series = [(np.abs(np.degrees(dihedrals_rad(x, quad))) > 120.0).astype(np.int64)
-              for x in production_positions(store, n_walkers)]
-    length = min(len(s) for s in series)  # equal-length series for the block bootstrap
-    result = population_estimate(np.stack([s[:length] for s in series]), 2, np.random.default_rng(0))
-    anti, low, high = result.populations[1], result.lower[1], result.upper[1]
+    # hopwell.bench.against_mc reads the run's walker states with the reference's own dihedral and
+    # well definitions (anti: |C1-C2-C3-C4| > 120 degrees), pooled with block-bootstrap intervals.
+    (anti,) = [row for row in compare(run.path, reference) if row["state"] == "anti"]
+    low, high = anti["ci95"]
     assert high - low < 0.035, (low, high)
-    assert abs(anti - anti_reference) < 0.02, (anti, low, high, anti_reference)
+    assert abs(anti["hopwell"] - anti["reference"]) < 0.02, anti
