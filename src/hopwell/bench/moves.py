@@ -6,6 +6,10 @@ gives acceptance by move type in production, proposals per second, effective sam
 (:func:`hopwell.analysis.summary.analyse`) and the phi > 0 population where the molecule is a dipeptide.
 Variants run one after another, so their ratios share the machine's load.
 
+``--training-shares 0.05,0.1,0.3,0.6`` runs each variant with each share of the budget spent
+training (30% by default, as ``hopwell run --hours``); the rows then say how much production
+gains from a longer-trained flow, and the last column gives the training cycles reached.
+
 ``--against REV`` checks a change for behaviour: each variant runs on this tree and then on git
 revision REV (checked out in a temporary worktree, run in a subprocess with that tree's
 ``src`` first on the path), alternating, and the table has a row ``NAME@REV`` under each row.
@@ -42,12 +46,12 @@ VARIANTS = {
 }
 
 
-def run_variant(spec: str, out: Path, overrides: dict, seconds: float) -> dict:
+def run_variant(spec: str, out: Path, overrides: dict, seconds: float, training_share: float = 0.3) -> dict:
     """One run with the given settings overrides; returns the row of the table."""
-    settings = replace(SamplerSettings(training_cycles=10**9, training_seconds=0.3 * seconds), **overrides)
+    settings = replace(SamplerSettings(training_cycles=10**9, training_seconds=training_share * seconds), **overrides)
     sampler = start_run(spec, out, BuildOptions(), settings, Budget(seconds=seconds))
     summary = analyse(out, n_boot=200)
-    production_s = sampler.elapsed_s - seconds * 0.3
+    production_s = sampler.elapsed_s - seconds * training_share
     flow = sampler.stats["production"]
     row = {
         "flow_acceptance": flow.acceptance(),
@@ -60,6 +64,7 @@ def run_variant(spec: str, out: Path, overrides: dict, seconds: float) -> dict:
     names = [s["name"] for s in summary["states"]]
     if "C7ax" in names:
         row["phi>0"] = sum(s["population"] for s in summary["states"] if s["name"] in ("C7ax", "alphaL"))
+    row["training_cycles"] = sampler.training_end_cycle
     return row
 
 
@@ -80,10 +85,15 @@ def main(argv=None) -> None:
     parser.add_argument("input")
     parser.add_argument("--minutes", type=float, default=5.0, help="budget per variant")
     parser.add_argument("--variants", default=",".join(VARIANTS), help="comma-separated names")
+    parser.add_argument("--training-shares", default="0.3",
+                        help="comma-separated shares of the budget spent training (each variant at each)")
     parser.add_argument("--json-out", type=Path, default=None)
     parser.add_argument("--against", metavar="REV", default=None,
                         help="also run each variant on this git revision, for an old/new table")
     args = parser.parse_args(argv)
+    shares = [float(x) for x in args.training_shares.split(",")]
+    if args.against and shares != [0.3]:
+        parser.error("--against compares at the default training share only")
     torch.set_num_threads(1)
     rows = {}
     with tempfile.TemporaryDirectory() as tmp:
@@ -93,7 +103,10 @@ def main(argv=None) -> None:
                             args.against], check=True)
         try:
             for k, name in enumerate(args.variants.split(",")):
-                rows[name] = run_variant(args.input, Path(tmp) / f"v{k}", VARIANTS[name], 60.0 * args.minutes)
+                for j, share in enumerate(shares):
+                    row_name = name if len(shares) == 1 else f"{name} ({share:g})"
+                    rows[row_name] = run_variant(args.input, Path(tmp) / f"v{k}-{j}", VARIANTS[name],
+                                                 60.0 * args.minutes, share)
                 if args.against:
                     rows[f"{name}@{args.against}"] = run_variant_at(other, args.input, name, args.minutes,
                                                                     Path(tmp) / f"v{k}.json")
