@@ -36,13 +36,16 @@ from hopwell.systems.builder import BuildOptions
 
 # Defaults (flow over rotatable single-bond torsions given their bond angles, with darts);
 # amide-like torsions in the flow too; an unconditional flow; flow and one-torsion moves over
-# every moving torsion (methyl rotors too); no darts.
+# every moving torsion (methyl rotors too); no darts; torsion-pair moves added to the default, or
+# in place of half the one-torsion moves (the same number of proposals).
 VARIANTS = {
     "default": {},
     "stiff-in-flow": {"flow_stiff_torsions": True},
     "no-context": {"flow_context": False},
     "all-torsions": {"flow_torsions": "all"},
     "no-darts": {"darts_per_cycle": 0},
+    "pairs": {"pair_moves_per_cycle": 8},
+    "half-pairs": {"single_moves_per_cycle": 8, "pair_moves_per_cycle": 8},
 }
 
 
@@ -56,6 +59,7 @@ def run_variant(spec: str, out: Path, overrides: dict, seconds: float, training_
     row = {
         "flow_acceptance": flow.acceptance(),
         "one_torsion_acceptance": sampler.stats["single"].acceptance(),
+        "pair_acceptance": sampler.stats["pair"].acceptance(),
         "dart_acceptance": sampler.stats["dart"].acceptance(),
         "flow_proposals_per_s": flow.proposed / production_s,
         "ess_per_s": summary["effective_samples"] / production_s,

@@ -108,11 +108,21 @@ class OneTorsion:
             out[rebuilt] = positions.numpy()
         return out
 
+    def _draw(self, positions_nm: np.ndarray, current, owner: np.ndarray,
+              rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
+        """Proposals from the states ``owner`` and their ``log q(t) - log q(t')``: one column each."""
+        flow, moving = self.trainer.flow, np.asarray(self.trainer.moving)
+        index = rng.integers(0, len(moving), len(owner))
+        new = flow.marginal_sample(index, rng)
+        old = current.torsions_rad.numpy()[owner, moving[index]]
+        log_q_ratio = flow.marginal_log_prob(index, old) - flow.marginal_log_prob(index, new)
+        return self._propose(positions_nm, current, owner, index, new), log_q_ratio
+
     def apply(self, walkers: Walkers, which: np.ndarray, streams: RandomStreams) -> MoveResult:
         """Each walker in ``which`` gets its proposals; all walkers' current batches are drawn,
         guarded and scored together, then tried walker by walker."""
         which = np.asarray(which, dtype=np.int64)
-        flow, kT, moving = self.trainer.flow, self.evaluator.kT, np.asarray(self.trainer.moving)
+        kT = self.evaluator.kT
         remaining = np.full(len(which), self.n)
         moved = np.zeros(len(which), dtype=bool)
         while (active := np.flatnonzero(remaining > 0)).size:
@@ -123,11 +133,7 @@ class OneTorsion:
             counts = remaining[active]
             owner = np.repeat(np.arange(len(active)), counts)
             bounds = np.concatenate([[0], np.cumsum(counts)])
-            index = streams.numpy.integers(0, len(moving), len(owner))
-            new = flow.marginal_sample(index, streams.numpy)
-            old = current.torsions_rad.numpy()[owner, moving[index]]
-            log_q_ratio = flow.marginal_log_prob(index, old) - flow.marginal_log_prob(index, new)
-            proposed = self._propose(positions_nm, current, owner, index, new)
+            proposed, log_q_ratio = self._draw(positions_nm, current, owner, streams.numpy)
             mask = self.guard(proposed)
             ok = ~np.asarray(mask.rejected)
             energy = np.full(len(owner), np.inf)

@@ -40,6 +40,7 @@ from hopwell.moves.base import MoveCounters, RandomStreams, Walkers
 from hopwell.moves.flow_block import FlowBlock
 from hopwell.moves.langevin import LangevinSegment
 from hopwell.moves.one_torsion import OneTorsion
+from hopwell.moves.torsion_pair import TorsionPair
 from hopwell.sampling.basins import KnownBasins
 from hopwell.sampling.records import ChunkQueue, Snapshot
 from hopwell.sampling.settings import Budget, SamplerSettings
@@ -105,6 +106,7 @@ class Sampler:
         self.local = LangevinSegment(self._segment_evaluators(), s.langevin_steps, self._log, guard=self.guard)
         self.flow_move = FlowBlock(self.trainer, self.guard, self.evaluator, s.proposals_per_cycle)
         self.one_torsion = OneTorsion(self.trainer, self.guard, self.evaluator, s.single_moves_per_cycle)
+        self.torsion_pair = TorsionPair(self.trainer, self.guard, self.evaluator, s.pair_moves_per_cycle)
         self.basins.build(self.evaluator)  # the seed darts and basin probes
 
     def _segment_evaluators(self) -> list[EnergyEvaluator]:
@@ -114,7 +116,7 @@ class Sampler:
     @property
     def _all_moves(self) -> list:
         """Every move built, scheduled or not, the darts and probe aside: their counters are checkpointed."""
-        return [self.local, self.flow_move, self.one_torsion]
+        return [self.local, self.flow_move, self.one_torsion, self.torsion_pair]
 
     @property
     def moves(self) -> list:
@@ -124,12 +126,13 @@ class Sampler:
             return [self.local]
         return [self.local] + [m for m, on in ((self.flow_move, s.proposals_per_cycle),
                                                (self.one_torsion, s.single_moves_per_cycle),
+                                               (self.torsion_pair, s.pair_moves_per_cycle),
                                                (self.basins.darts, self.basins.darts is not None)) if on]
 
     @property
     def stats(self) -> dict[str, MoveCounters]:
         """Every move's counters by checkpoint key (``training``/``production`` for the flow)."""
-        return {**self.flow_move.counters, "single": self.one_torsion.counters,
+        return {**self.flow_move.counters, "single": self.one_torsion.counters, "pair": self.torsion_pair.counters,
                 "dart": self.basins.dart_counters,
                 "langevin": self.local.counters}
 
