@@ -5,8 +5,9 @@ Metropolis-Hastings ratio in its own docstring):
 
 1. a local segment (:class:`~hopwell.moves.langevin.LangevinSegment`, Langevin or GHMC);
 2. a block of flow proposals (:class:`~hopwell.moves.flow_block.FlowBlock`);
-3. one-torsion redraws (:class:`~hopwell.moves.one_torsion.OneTorsion`) and seed darts between
-   the basins of the minimized seeds (:class:`~hopwell.moves.darts.SeedDarts`).
+3. one-torsion redraws (:class:`~hopwell.moves.one_torsion.OneTorsion`), torsion-pair redraws
+   when switched on (:class:`~hopwell.moves.torsion_pair.TorsionPair`) and seed darts between
+   the basins of the minimized seeds (:class:`~hopwell.sampling.basins.KnownBasins`).
 
 After the moves, basin probes look for minima outside every known basin
 (:mod:`hopwell.sampling.probes`; they work on copies and never change a walker).
