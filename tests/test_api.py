@@ -60,6 +60,9 @@ def test_populations_match_the_summary_json_of_hopwell_report(api_run):
         assert [row["ci95_low"], row["ci95_high"]] == pytest.approx(state["ci95"], abs=1e-12)
         assert row["dG_kJ_per_mol"] == pytest.approx(state["dG_kJ_per_mol"], abs=1e-9)
         assert [row["dG_ci95_low"], row["dG_ci95_high"]] == pytest.approx(state["dG_ci95"], abs=1e-9)
+        assert [row["all_states_ci95_low"], row["all_states_ci95_high"]] == pytest.approx(
+            state["ci95_all_states"], abs=1e-12)
+        assert row["all_states_ci95_low"] <= row["ci95_low"] and row["ci95_high"] <= row["all_states_ci95_high"]
     assert sum(r["population"] for r in rows) == pytest.approx(1.0, abs=1e-9)
 
 

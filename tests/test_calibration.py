@@ -14,9 +14,9 @@ from hopwell.bench import calibration as cal
 from hopwell.bench import chain
 
 
-def state(name, low, high, truth, population=None):
+def state(name, low, high, truth, population=None, joint=None):
     mid = 0.5 * (low + high) if population is None else population
-    return {"name": name, "population": mid, "ci95": [low, high], "truth": truth}
+    return {"name": name, "population": mid, "ci95": [low, high], "ci95_all": joint or [low, high], "truth": truth}
 
 
 def record(system, verdict, *states, seed=1, seconds=10.0):
@@ -58,6 +58,19 @@ def test_false_converged_counts_converged_runs_with_a_miss():
     assert cal.share(*cal.false_converged(RECORDS)) == 0.5
 
 
+def test_false_converged_by_the_intervals_of_all_states_at_once():
+    # r2's b misses its own interval (0.6-0.75) but not the joint one (0.55-0.85): no miss there.
+    # A converged record without joint intervals (an older file) is left out of that count.
+    wider = record("chain", "converged", state("a", 0.1, 0.3, 0.2, joint=[0.05, 0.35]),
+                   state("b", 0.6, 0.75, 0.8, joint=[0.55, 0.85]))
+    older = record("chain", "converged", state("a", 0.1, 0.3, 0.2))
+    del older["states"][0]["ci95_all"]
+    chosen = [RECORDS[0], wider, older]
+    assert cal.false_converged(chosen) == (1, 3)
+    assert cal.false_converged(chosen, "ci95_all") == (0, 2)
+    assert cal.system_rows(chosen)["chain"]["false_conv_all"] == 0.0
+
+
 def test_flagged_misses():
     # Runs with a miss: r2 (converged) and r3 (not converged): one of two flagged.
     assert cal.flagged_misses(RECORDS) == (1, 2)
@@ -73,7 +86,7 @@ def test_system_rows_and_the_all_row():
     other = record("nma-trans", "converged", state("cis", 0.0, 0.009, 0.011), seed=2)
     rows = cal.system_rows(RECORDS + [other])
     assert rows["chain"] == {"runs": 4, "errors": 1, "converged": 2, "conv_missing": 1, "false_conv": 0.5,
-                             "runs_missing": 2, "flagged": 1, "flag_share": 0.5}
+                             "false_conv_all": 0.5, "runs_missing": 2, "flagged": 1, "flag_share": 0.5}
     assert rows["nma-trans"]["false_conv"] == 1.0
     assert rows["nma-trans"]["flag_share"] == 0.0
     # All: converged r1, r2, other (2 miss of 3); misses r2, r3, other (1 flagged of 3).

@@ -12,6 +12,8 @@ from hopwell.analysis.stats import (
     free_energy_differences,
     integrated_autocorrelation_time,
     jeffreys_interval,
+    joint_interval,
+    joint_level,
     kish_ess,
     population_estimate,
     split_rhat,
@@ -169,6 +171,40 @@ def test_rare_state_coverage_restored_by_the_floor():
     percentile = coverage(sets, np.random.default_rng(1), truth=0.002, bootstrap_only=True)
     assert stats.binomtest(percentile, 400, 0.95, alternative="less").pvalue < 1e-3
     assert stats.binomtest(floored, 400, 0.95, alternative="less").pvalue > 0.01
+
+
+@pytest.mark.parametrize("n_states", [1, 2, 3, 5, 10])
+def test_joint_level_of_independent_states_is_sidaks(n_states):
+    # Independent replicas: all K intervals at level L hold a replica with probability L ** K,
+    # so the joint 95% level is 0.95 ** (1 / K) (Sidak 1967, J. Am. Stat. Assoc. 62:626).
+    reps = np.random.default_rng(20).standard_normal((200_000, n_states))
+    assert joint_level(reps, 0.95) == pytest.approx(0.95 ** (1.0 / n_states), abs=2e-4)
+
+
+def test_joint_level_of_states_that_move_together_is_the_plain_level():
+    column = np.random.default_rng(21).standard_normal((5000, 1))
+    assert joint_level(np.repeat(column, 4, axis=1), 0.95) == 0.95
+
+
+def test_joint_intervals_hold_all_states_at_once():
+    # 600 data sets of 4 correlated walkers x 4000 samples in three states with known
+    # populations (an AR(1) series cut at Gaussian quantiles, scipy.stats.norm). The states'
+    # own 95% intervals all hold their truths less often than 95% (some of three misses);
+    # the joint intervals must hold all three in 95% of the sets (binomial test,
+    # scipy.stats.binomtest), and each contains the state's own interval.
+    truth = np.array([0.2, 0.5, 0.3])
+    x = ar1(np.random.default_rng(2025), 0.9, (600, 4, 4000))
+    sets = np.digitize(x, stats.norm.ppf(np.cumsum(truth)[:-1]))
+    rng = np.random.default_rng(1)
+    own, joint = [], []
+    for d in sets:
+        r = population_estimate(d, 3, rng, n_boot=400)
+        lower, upper, level = joint_interval(r)
+        assert 0.95 < level <= 1 - 0.05 / 3 and np.all(lower <= r.lower) and np.all(r.upper <= upper)
+        own.append(np.all((r.lower <= truth) & (truth <= r.upper)))
+        joint.append(np.all((lower <= truth) & (truth <= upper)))
+    assert stats.binomtest(sum(own), len(sets), 0.95).pvalue < 0.01  # 92.0% when written
+    assert stats.binomtest(sum(joint), len(sets), 0.95).pvalue > 0.01
 
 
 def test_trapped_walkers():

@@ -30,11 +30,10 @@ from chain_systems import (
     torsion_energy_kj,
     well_edges_rad,
 )
-from rdkit import Chem
 from scipy import integrate
 
 from hopwell.analysis.stats import population_estimate
-from hopwell.bench.chain import ANGLE_K, BOND_K, MASS_DA, TORSION_A_KJ, TORSION_B_KJ, TORSION_C_KJ
+from hopwell.bench.chain import chain_mol, chain_system
 from hopwell.coords.torsions import molecule_zmatrix, moving_torsions
 from hopwell.moves.torsion_pair import bond_neighbours
 from hopwell.sampling.sampler import Budget, Sampler, SamplerSettings
@@ -49,39 +48,13 @@ def pair_energy_kj(phi1, phi2):
 
 
 def five_chain_system() -> openmm.System:
-    system = openmm.System()
-    for _ in range(5):
-        system.addParticle(MASS_DA)
-    bonds = openmm.CustomBondForce(f"0.5*{BOND_K}*(r-{BOND_NM})^2")
-    for i in range(4):
-        bonds.addBond(i, i + 1, [])
-    angles = openmm.CustomAngleForce(f"0.5*{ANGLE_K}*(theta-{ANGLE_RAD})^2")
-    for i in range(3):
-        angles.addAngle(i, i + 1, i + 2, [])
-    torsion = openmm.CustomTorsionForce(
-        f"{TORSION_A_KJ}*(1+cos(3*theta)) + {TORSION_B_KJ}*cos(theta) + {TORSION_C_KJ}*sin(theta)")
-    torsion.addTorsion(0, 1, 2, 3, [])
-    torsion.addTorsion(1, 2, 3, 4, [])
+    """The chain continued to five atoms (``chain_system(5)``), with the coupling D cos(phi1 - phi2)."""
+    system = chain_system(5)
     coupling = openmm.CustomCompoundBondForce(
         5, f"{COUPLING_KJ}*cos(dihedral(p1,p2,p3,p4) - dihedral(p2,p3,p4,p5))")
     coupling.addBond([0, 1, 2, 3, 4], [])
-    for force in (bonds, angles, torsion, coupling):
-        system.addForce(force)
+    system.addForce(coupling)
     return system
-
-
-def five_chain_mol() -> Chem.Mol:
-    rw = Chem.RWMol()
-    for _ in range(5):
-        atom = Chem.Atom(6)
-        atom.SetNoImplicit(True)
-        atom.SetNumExplicitHs(0)
-        rw.AddAtom(atom)
-    for i in range(4):
-        rw.AddBond(i, i + 1, Chem.BondType.SINGLE)
-    mol = rw.GetMol()
-    mol.UpdatePropertyCache(strict=False)
-    return mol
 
 
 def five_chain_positions_nm(phi1_deg: float, phi2_deg: float) -> np.ndarray:
@@ -117,7 +90,7 @@ def test_five_chain_geometry_and_torsion_neighbours():
     # mdtraj computes in float32: agreement to 1e-3 degrees.
     assert np.degrees(dihedrals_rad(x[None], (0, 1, 2, 3)))[0] == pytest.approx(-60.0, abs=1e-3)
     assert abs(np.degrees(dihedrals_rad(x[None], (1, 2, 3, 4)))[0]) == pytest.approx(180.0, abs=1e-3)
-    mol = five_chain_mol()
+    mol = chain_mol(5)
     zmat = molecule_zmatrix(mol)
     moving = moving_torsions(zmat, mol)
     assert len(moving) == 2
@@ -139,7 +112,7 @@ def test_pair_moves_alone_match_quadrature(tmp_path):
     seeds = np.stack([five_chain_positions_nm(a, b) for a, b in ((-60.0, -60.0), (-55.0, 60.0), (60.0, 180.0),
                                                                   (180.0, -65.0))])
     store = new_store(tmp_path / "run", settings)
-    sampler = Sampler(five_chain_mol(), five_chain_system(), seeds, settings, store, n_walkers=len(seeds),
+    sampler = Sampler(chain_mol(5), five_chain_system(), seeds, settings, store, n_walkers=len(seeds),
                       platform="Reference")
     sampler.run(Budget(samples=12000))
     assert sampler.stats["pair"].accepted > 500 and sampler.stats["single"].proposed == 0

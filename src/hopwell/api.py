@@ -222,11 +222,15 @@ class Run:
         -------
         list of dict
             ``state``, ``population``, ``ci95_low``, ``ci95_high`` (fractions),
-            ``dG_kJ_per_mol``, ``dG_ci95_low``, ``dG_ci95_high``.
+            ``dG_kJ_per_mol``, ``dG_ci95_low``, ``dG_ci95_high``, and
+            ``all_states_ci95_low``, ``all_states_ci95_high``: intervals that hold every
+            state's population at once with 95% probability
+            (:func:`hopwell.analysis.stats.joint_interval`).
         """
         return [
             {"state": s["name"], "population": s["population"], "ci95_low": s["ci95"][0],
              "ci95_high": s["ci95"][1], "dG_kJ_per_mol": s["dG_kJ_per_mol"],
-             "dG_ci95_low": s["dG_ci95"][0], "dG_ci95_high": s["dG_ci95"][1]}
+             "dG_ci95_low": s["dG_ci95"][0], "dG_ci95_high": s["dG_ci95"][1],
+             "all_states_ci95_low": s["ci95_all_states"][0], "all_states_ci95_high": s["ci95_all_states"][1]}
             for s in self.summary(states_file)["states"]
         ]

@@ -103,6 +103,7 @@ def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict
     rng = np.random.default_rng(rng_seed)
     pops = stats.population_estimate(series, n_states, rng, n_boot=n_boot)
     dg = stats.free_energy_differences(pops, kT)
+    all_lower, all_upper, all_level = stats.joint_interval(pops)
     importance = _importance(production, model, n_states, rng, n_boot)
 
     n_walkers = series.shape[0]
@@ -127,6 +128,7 @@ def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict
                 "name": name,
                 "population": float(pops.populations[s]),
                 "ci95": [float(pops.lower[s]), float(pops.upper[s])],
+                "ci95_all_states": [float(all_lower[s]), float(all_upper[s])],
                 "dG_kJ_per_mol": float(dg.values[s]),
                 "dG_ci95": [float(dg.lower[s]), float(dg.upper[s])],
                 "dG_kcal_per_mol": float(dg.values[s] / KJ_PER_KCAL),
@@ -135,6 +137,7 @@ def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict
             for s, name in enumerate(model.names)
         ],
         "dG_reference": model.names[int(dg.reference)],
+        "all_states_level": float(all_level),
         "samples": int(series.size),
         "effective_samples": float(pops.ess),
         "statistical_inefficiency": float(pops.statistical_inefficiency),

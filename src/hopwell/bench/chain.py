@@ -40,34 +40,39 @@ def torsion_energy_kj(phi):
             + TORSION_C_KJ * np.sin(phi))
 
 
-def chain_system() -> openmm.System:
-    """OpenMM System of the chain: custom bond, angle and torsion forces, nothing else."""
+def chain_system(n_atoms: int = 4) -> openmm.System:
+    """OpenMM System of the chain: custom bond, angle and torsion forces, nothing else.
+
+    ``n_atoms`` > 4 continues the chain with the same bond, angle and torsion terms (one
+    torsion per four consecutive atoms).
+    """
     system = openmm.System()
-    for _ in range(4):
+    for _ in range(n_atoms):
         system.addParticle(MASS_DA)
     bonds = openmm.CustomBondForce(f"0.5*{BOND_K}*(r-{BOND_NM})^2")
-    for i in range(3):
+    for i in range(n_atoms - 1):
         bonds.addBond(i, i + 1, [])
     angles = openmm.CustomAngleForce(f"0.5*{ANGLE_K}*(theta-{ANGLE_RAD})^2")
-    angles.addAngle(0, 1, 2, [])
-    angles.addAngle(1, 2, 3, [])
+    for i in range(n_atoms - 2):
+        angles.addAngle(i, i + 1, i + 2, [])
     torsion = openmm.CustomTorsionForce(
         f"{TORSION_A_KJ}*(1+cos(3*theta)) + {TORSION_B_KJ}*cos(theta) + {TORSION_C_KJ}*sin(theta)")
-    torsion.addTorsion(0, 1, 2, 3, [])
+    for i in range(n_atoms - 3):
+        torsion.addTorsion(i, i + 1, i + 2, i + 3, [])
     for force in (bonds, angles, torsion):
         system.addForce(force)
     return system
 
 
-def chain_mol() -> Chem.Mol:
-    """Four carbons in a chain, single bonds, no hydrogens at all (explicit or implicit)."""
+def chain_mol(n_atoms: int = 4) -> Chem.Mol:
+    """``n_atoms`` carbons in a chain, single bonds, no hydrogens at all (explicit or implicit)."""
     rw = Chem.RWMol()
-    for _ in range(4):
+    for _ in range(n_atoms):
         atom = Chem.Atom(6)
         atom.SetNoImplicit(True)
         atom.SetNumExplicitHs(0)
         rw.AddAtom(atom)
-    for i in range(3):
+    for i in range(n_atoms - 1):
         rw.AddBond(i, i + 1, Chem.BondType.SINGLE)
     mol = rw.GetMol()
     mol.UpdatePropertyCache(strict=False)

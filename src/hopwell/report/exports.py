@@ -31,11 +31,12 @@ def write_report(run_dir: Path, summary: dict) -> Path:
     out = io.StringIO()
     writer = csv.writer(out)
     writer.writerow(["state", "population", "ci95_low", "ci95_high", "dG_kJ_per_mol",
-                     "dG_ci95_low", "dG_ci95_high"])
+                     "dG_ci95_low", "dG_ci95_high", "all_states_ci95_low", "all_states_ci95_high"])
     for s in summary["states"]:
         writer.writerow([s["name"], f"{s['population']:.5f}", f"{s['ci95'][0]:.5f}",
                          f"{s['ci95'][1]:.5f}", f"{s['dG_kJ_per_mol']:.3f}",
-                         f"{s['dG_ci95'][0]:.3f}", f"{s['dG_ci95'][1]:.3f}"])
+                         f"{s['dG_ci95'][0]:.3f}", f"{s['dG_ci95'][1]:.3f}",
+                         f"{s['ci95_all_states'][0]:.5f}", f"{s['ci95_all_states'][1]:.5f}"])
     atomic_write_bytes(run_dir / "populations.csv", out.getvalue().encode())
     return run_dir / "report.html"
 

@@ -102,11 +102,13 @@ def html_page(summary: dict, structures: dict | None = None) -> str:
     rows = "".join(
         f"<tr><td>{html.escape(s['name'])}</td><td>{100 * s['population']:.1f}</td>"
         f"<td>{100 * s['ci95'][0]:.1f} - {100 * s['ci95'][1]:.1f}</td>"
+        f"<td>{100 * s['ci95_all_states'][0]:.1f} - {100 * s['ci95_all_states'][1]:.1f}</td>"
         f"<td>{_kj(s['dG_kJ_per_mol'])}</td><td>{_kj(s['dG_ci95'][0])} - {_kj(s['dG_ci95'][1])}</td></tr>"
         for s in summary["states"]
     )
     acceptance = summary["flow_acceptance_production"]
     populations = f"""<table id="populations"><tr><th>state</th><th>population (%)</th><th>95% interval (%)</th>
+<th title="intervals that hold every state's population at once with 95% probability">95%, all states at once (%)</th>
 <th>dG (kJ/mol) vs {html.escape(summary['dG_reference'])}</th><th>dG 95% interval</th></tr>{rows}</table>"""
     walker_rows = "".join(f"<tr><td>{w}</td>" + "".join(f"<td>{100 * p:.1f}</td>" for p in row) + f"<td>{t}</td></tr>"
                           for w, (row, t) in enumerate(zip(summary["per_walker_populations"],
