@@ -159,6 +159,24 @@ def test_every_sample_in_one_state():
     assert not any(r.startswith("every sample") for r in verdict.reasons)
 
 
+def test_one_populated_state_with_rare_visits_needs_transitions():
+    # The calibration's false "converged", rebuilt: four walkers in state 0, one sample of one
+    # walker in state 1 (below the population floor, so the one-walker and R-hat rules skip
+    # it), the indicator's inefficiency 1 and the ESS the sample count. Its 2 transitions must
+    # make it "not converged"; the same series with 12 single-sample visits spread over the
+    # walkers (24 transitions, still below the floor) must not.
+    series = np.zeros((4, 2000), dtype=int)
+    series[2, 1000] = 1
+    verdict, estimate = verdict_of(series, 2)
+    assert estimate.populations[1] < 0.005 and estimate.ess > MIN_ESS
+    assert rules_fired(verdict) == {"transitions"}
+    assert verdict.reasons == ["only 2 transitions between states"]
+    for k in range(12):
+        series[k % 4, 100 + 150 * k] = 1
+    verdict, _ = verdict_of(series, 2)
+    assert transitions(series) == 24 and verdict.reasons == []
+
+
 def importance_like(estimate, shift=0.0, effective_samples=5000.0, proposals=10000):
     """An importance estimate whose intervals are the MCMC ones moved by ``shift``."""
     return {"populations": list(estimate.populations + shift),
