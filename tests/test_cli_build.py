@@ -67,3 +67,12 @@ def test_bad_input_exits_2_with_one_line(args):
     assert "Traceback" not in proc.stderr
     if args[-1] != "water":  # click's own usage errors print a usage block, also exit 2
         assert len(proc.stderr.strip().splitlines()) == 1, proc.stderr
+
+
+def test_progress_line_lists_a_few_seed_basins_or_the_largest_of_many():
+    from hopwell.cli import basin_shares
+
+    assert basin_shares([0.18, 0.04, 0.78]) == "seed basins 18/4% (outside 78%)"
+    # Ten basins, three of them never entered: the five largest, by hand.
+    many = [0.02, 0.03, 0.01, 0.04, 0.0, 0.0, 0.05, 0.06, 0.0, 0.01, 0.78]
+    assert basin_shares(many) == "largest 5 of 10 seed basins 6/5/4/3/2%, 3 empty (outside 78%)"

@@ -270,8 +270,7 @@ def _progress_printer(budget):
                     f" accepted; {sampler.production_samples} samples")
         darts = f", darts {sampler.stats['dart'].acceptance():.2f}" if sampler.stats["dart"].proposed else ""
         basins = sampler.basins.populations()
-        shares = "" if basins is None else (
-            "; seed basins " + "/".join(f"{100 * p:.0f}" for p in basins[:-1]) + f"% (outside {100 * basins[-1]:.0f}%)")
+        shares = "" if basins is None else "; " + basin_shares(basins)
         return (f"{phase} cycle {sampler.cycle}: one-torsion {sampler.stats['single'].acceptance():.2f},"
                 f" flow {sampler.stats[phase].recent_acceptance():.2f}{darts} accepted;"
                 f" {sampler.production_samples} samples{shares}")
@@ -309,6 +308,27 @@ def _run_sharded(spec, run_dir, options, settings, budget, walkers, platform, wo
                              platform=platform, workers=workers, scheduler=scheduler,
                              progress=_progress_printer(budget))
     click.echo(f"\nrun finished: {len(done)} shard(s) sampled in {run_dir}/shards", err=True)
+
+
+def basin_shares(basins, shown: int = 6) -> str:
+    """The progress line's seed-basin occupancy: each basin's share, or the largest few of many.
+
+    Parameters
+    ----------
+    basins : array_like, shape (n_basins + 1,)
+        Shares of production samples in each seed basin, then outside all of them.
+    shown : int
+        Above this many basins, only the ``shown - 1`` largest are listed, with a count of the
+        empty ones.
+    """
+    inside, outside = list(basins[:-1]), basins[-1]
+    if len(inside) <= shown:
+        listed = "seed basins " + "/".join(f"{100 * p:.0f}" for p in inside) + "%"
+    else:
+        largest = sorted(inside, reverse=True)[: shown - 1]
+        listed = (f"largest {len(largest)} of {len(inside)} seed basins "
+                  + "/".join(f"{100 * p:.0f}" for p in largest) + f"%, {sum(p == 0 for p in inside)} empty")
+    return f"{listed} (outside {100 * outside:.0f}%)"
 
 
 def _run_settings(hours, samples, temperature_K, training_cycles, langevin_steps, proposals, method,
