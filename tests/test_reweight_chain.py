@@ -146,6 +146,12 @@ def test_reweighted_populations_match_quadrature(chain_run):
         exact = quadrature_populations(temperature)  # scipy.integrate.quad at the new temperature
         p, lower, upper = _populations(reweighted["states"])
         assert family_covers(p, lower, upper, exact), (temperature, p, lower, upper, exact)
+        # The intervals for all states at once sit at a per-state level between 95% and
+        # Bonferroni's (stats.joint_level), so each holds the state's own interval.
+        by_name = {s["name"]: s for s in reweighted["states"]}
+        joint = np.array([by_name[name]["ci95_all_states"] for name in WELLS])
+        assert 0.95 <= reweighted["all_states_level"] <= 1 - 0.05 / len(reweighted["states"])
+        assert np.all(joint[:, 0] <= lower) and np.all(joint[:, 1] >= upper)
         intervals[temperature] = (lower, upper)
     # The sampling itself matches the quadrature at T0 (the same summary's unweighted table).
     p, lower, upper = _populations(summary["states"])

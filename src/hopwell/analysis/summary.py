@@ -243,13 +243,16 @@ def _reweighted(store, reweight, production, series, model, rng, n_boot) -> dict
     if overrides:
         log_w = log_w + hamiltonian_log_weights(store, overrides, new_temperature, production.energy_kj)
     result = reweighted_populations(series, walker_series(log_w, production), len(model.names), rng, n_boot)
+    all_lower, all_upper, all_level = stats.joint_interval(result)
     return {
         "to": {"temperature_K": new_temperature, **overrides},
         "effective_samples": float(result.ess),
         "statistical_inefficiency": float(result.statistical_inefficiency),
         "states": [{"name": name, "population": float(result.populations[s]),
-                    "ci95": [float(result.lower[s]), float(result.upper[s])]}
+                    "ci95": [float(result.lower[s]), float(result.upper[s])],
+                    "ci95_all_states": [float(all_lower[s]), float(all_upper[s])]}
                    for s, name in enumerate(model.names)],
+        "all_states_level": float(all_level),
     }
 
 
