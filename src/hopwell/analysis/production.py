@@ -17,6 +17,7 @@ import numpy as np
 from hopwell.analysis import states as st
 from hopwell.errors import InputError
 from hopwell.sampling.checkpoint import newest_readable
+from hopwell.sampling.shards import shard_stores
 from hopwell.sampling.store import MOVE_FLOW, RunStore
 
 ACCEPTANCE_WINDOWS = 50  # cycle windows over the whole run in the acceptance-over-time table
@@ -192,8 +193,6 @@ def readable_state(store: RunStore) -> dict | None:
 
 def checkpoint_warnings(store: RunStore) -> list[str]:
     """One line for each damaged checkpoint of a run and its shards, saying what the report read instead."""
-    from hopwell.sampling.shards import shard_stores
-
     lines = []
     for run in [store] + [shard for shard, _ in shard_stores(store.path)]:
         state, passed_over = newest_readable(run.path)
@@ -229,8 +228,6 @@ def move_acceptance(store: RunStore) -> dict:
     starts from the training run's checkpoint). A sharded run also gets ``per_shard``: each
     shard's own acceptance, in shard order, as the report's ``per_shard_populations``.
     """
-    from hopwell.sampling.shards import shard_stores
-
     saved = _saved_counters(store)
     own = _tallies(saved)
     added = [{key: value - own[key] for key, value in _tallies(_saved_counters(shard)).items()}
@@ -283,8 +280,6 @@ def gather_run(store: RunStore, topology: md.Topology, torsions, kT: float) -> P
     walker keeps its own time series and its own autocorrelation; the acceptance counts add the
     training run's cycles to the shards'.
     """
-    from hopwell.sampling.shards import shard_stores
-
     shards = shard_stores(store.path)
     if not shards:
         return gather(store, topology, torsions, kT)
