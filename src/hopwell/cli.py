@@ -269,6 +269,8 @@ def _progress_printer(budget):
             return (f"cycle {sampler.cycle}: exchanges {sampler.stats['exchange'].recent_acceptance():.2f}"
                     f" accepted; {sampler.production_samples} samples")
         darts = f", darts {sampler.stats['dart'].acceptance():.2f}" if sampler.stats["dart"].proposed else ""
+        if sampler.stats["ring"].proposed:
+            darts += f", ring flips {sampler.stats['ring'].acceptance():.2f}"
         basins = sampler.basins.populations()
         shares = "" if basins is None else "; " + basin_shares(basins)
         return (f"{phase} cycle {sampler.cycle}: one-torsion {sampler.stats['single'].acceptance():.2f},"

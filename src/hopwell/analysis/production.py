@@ -179,7 +179,7 @@ def walker_series(values: np.ndarray, production: Production) -> np.ndarray:
 
 
 MOVE_COUNTERS = {"training": "flow_training", "production": "flow_production", "single": "one_torsion",
-                 "pair": "torsion_pair", "dart": "dart"}  # checkpoint key: report label
+                 "pair": "torsion_pair", "ring": "ring_flip", "dart": "dart"}  # checkpoint key: report label
 
 
 def readable_state(store: RunStore) -> dict | None:

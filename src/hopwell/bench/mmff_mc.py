@@ -3,8 +3,9 @@
 Run ``python -m hopwell.bench.mmff_mc SMILES_OR_NAME --steps N --chains C --out FILE.json``.
 NAME is looked up in ``systems/ligands/ligands.smi`` (``--ligands`` to use another file).
 
-This is an outside check on hopwell: it imports nothing of hopwell but the table printer, takes
-its energies from ``rdkit.ForceField`` (``MMFFGetMoleculeForceField(...).CalcEnergy``, kcal/mol,
+This is an outside check on hopwell: it imports nothing of hopwell but the table printer and the
+ring reflection's geometry (a proposal only, whose involution and unit Jacobian
+``tests/test_mmff_mc.py`` checks numerically), takes its energies from ``rdkit.ForceField`` (``MMFFGetMoleculeForceField(...).CalcEnergy``, kcal/mol,
 vacuum, constant dielectric 1) rather than from hopwell's OpenMM forces, and samples Cartesian
 coordinates with its own moves. Each step draws one move type with a fixed probability and
 accepts the proposal y from x with
@@ -20,7 +21,8 @@ where every proposal here is symmetric or a volume-preserving involution, so the
   heavy atom whose only heavy neighbour is across an acyclic single bond.
 * ``ring``: one isolated saturated ring of five to seven atoms drawn uniformly; its atoms are
   reflected through their least-squares mean plane and each substituent branch is carried
-  rigidly in the right-handed local frame of its ring atom (see ``ring_flip``). The map is its own
+  rigidly in the right-handed local frame of its ring atom
+  (:func:`hopwell.coords.ring_flip.reflect_ring`). The map is its own
   inverse and keeps volume (``tests/test_mmff_mc.py`` checks both numerically), so it is an exact
   deterministic MH move. It maps one chair onto the other (axial <-> equatorial) and keeps every
   stereocentre. Cartesian moves alone never flipped a methylcyclohexane chair in 220 000 steps
@@ -70,6 +72,7 @@ from rdkit import Chem
 from rdkit.Chem import AllChem
 
 from hopwell.bench import print_table
+from hopwell.coords.ring_flip import flippable_rings, reflect_ring
 
 # Molar gas constant in kcal/(mol K): CODATA 2018 R = 8.314462618 J/(mol K), 1 kcal = 4184 J.
 GAS_CONSTANT_KCAL_PER_MOL_K = 8.314462618 / 4184.0
@@ -94,14 +97,6 @@ class Pivot:
     axis: tuple[int, int]
     moving: np.ndarray
     sign: float
-
-
-@dataclass(frozen=True)
-class RingMove:
-    """One ring for ``ring_flip``: ring atoms in ring order and each ring atom's branch atoms."""
-
-    ring: np.ndarray
-    branches: tuple[np.ndarray, ...]
 
 
 @dataclass(frozen=True)
@@ -130,7 +125,7 @@ class Topology:
         The recorded torsion of each rotatable bond (0-based atom indices).
     rotors : list of Pivot
         Terminal groups (their hydrogens turn).
-    rings : list of RingMove
+    rings : list of hopwell.coords.ring_flip.RingReflection
         Rings the ring move reflects.
     ring_sites : list of RingSite
         Ring substituents whose axial/equatorial state is recorded.
@@ -186,17 +181,6 @@ def _pivot(mol: Chem.Mol, j: int, k: int) -> Pivot:
     return Pivot((j, k), np.array(_side(mol, j, k)), -1.0)
 
 
-def _ordered_ring(mol: Chem.Mol, ring: tuple[int, ...]) -> list[int]:
-    """The ring's atoms in bonded order around the ring."""
-    members = set(ring)
-    order = [ring[0]]
-    while len(order) < len(ring):
-        last = mol.GetAtomWithIdx(order[-1])
-        order.append(next(n.GetIdx() for n in last.GetNeighbors()
-                          if n.GetIdx() in members and n.GetIdx() not in order))
-    return order
-
-
 def build_topology(mol: Chem.Mol) -> Topology:
     """Choose pivots, rotors, ring moves, recorded torsions and stereocentres for ``mol``.
 
@@ -211,7 +195,6 @@ def build_topology(mol: Chem.Mol) -> Topology:
         Rotatable bonds are acyclic single bonds whose two atoms each have another heavy
         neighbour; each torsion's outer atoms are chosen by ``_heavy_neighbours``.
     """
-    ring_info = mol.GetRingInfo()
     pivots, quads, rotors = [], [], []
     for bond in mol.GetBonds():
         if bond.GetBondType() != Chem.BondType.SINGLE or bond.IsInRing():
@@ -228,26 +211,9 @@ def build_topology(mol: Chem.Mol) -> Topology:
             hydrogens = [n.GetIdx() for n in end.GetNeighbors() if n.GetAtomicNum() == 1]
             if not heavy_end and hydrogens:
                 rotors.append(Pivot((root.GetIdx(), end.GetIdx()), np.array(hydrogens), 1.0))
-    rings, sites = [], []
-    for ring in ring_info.AtomRings():
-        order = _ordered_ring(mol, ring)
-        isolated = all(ring_info.NumAtomRings(i) == 1 for i in order)
-        saturated = all(mol.GetBondBetweenAtoms(i, j).GetBondType() == Chem.BondType.SINGLE
-                        for i, j in zip(order, order[1:] + order[:1]))
-        if not (isolated and saturated and 5 <= len(ring) <= 7):
-            continue
-        branches = []
-        for pos, idx in enumerate(order):
-            ring_nbrs = {order[pos - 1], order[(pos + 1) % len(order)]}
-            branch = set()
-            for nbr in mol.GetAtomWithIdx(idx).GetNeighbors():
-                if nbr.GetIdx() not in ring_nbrs:
-                    branch.update(_side(mol, nbr.GetIdx(), idx))
-            branches.append(np.array(sorted(branch), dtype=int))
-        covered = set(order).union(*map(set, branches))
-        if len(covered) != mol.GetNumAtoms() or sum(map(len, branches)) + len(order) != len(covered):
-            continue  # a branch reaches back into the ring: not an isolated ring
-        rings.append(RingMove(np.array(order), tuple(branches)))
+    rings, sites = flippable_rings(mol), []
+    for move in rings:
+        order = [int(i) for i in move.ring]
         if len(order) != 6:
             continue
         for pos, idx in enumerate(order):
@@ -319,57 +285,6 @@ def rotate_about_bond(positions: np.ndarray, pivot: Pivot, angle_rad: float) -> 
     rotated = v * cos_t + np.cross(axis, v) * sin_t + np.outer(v @ axis, axis) * (1.0 - cos_t)
     out = positions.copy()
     out[pivot.moving] = origin + rotated
-    return out
-
-
-def _local_frame(positions: np.ndarray, before: int, centre: int, after: int) -> np.ndarray:
-    """Right-handed orthonormal frame (columns) at a ring atom from its two ring neighbours."""
-    u = positions[before] - positions[centre]
-    w = positions[after] - positions[centre]
-    e1 = u / np.linalg.norm(u) + w / np.linalg.norm(w)
-    e1 = e1 / np.linalg.norm(e1)
-    e2 = w - u
-    e2 = e2 - (e2 @ e1) * e1
-    e2 = e2 / np.linalg.norm(e2)
-    return np.column_stack([e1, e2, np.cross(e1, e2)])
-
-
-def ring_flip(positions: np.ndarray, move: RingMove) -> np.ndarray:
-    """Reflect a ring through its mean plane and carry each branch in its ring atom's frame.
-
-    Ring atoms map to r' = c + (I - 2 n n^T)(r - c), with c their centroid and n the normal of
-    their least-squares plane (smallest right singular vector). The reflected ring has the same
-    centroid and covariance, hence the same plane, so applying the map twice gives back the
-    ring. Each branch atom p of ring atom i keeps its coordinates in the right-handed frame F_i
-    (bisector of the two ring bonds, the in-plane perpendicular, their cross product):
-    p' = r_i' + F_i' F_i^T (p - r_i). F_i' is again right-handed, so every atom keeps its
-    chirality, and the map is again its own inverse. Its Jacobian is block triangular (ring
-    atoms first) with rotation blocks for the branches; the ring block has |det| = 1 because the
-    map only changes the sign of the out-of-plane coordinates in the principal-axis frame,
-    whose volume element depends on the singular values alone.
-
-    Parameters
-    ----------
-    positions : numpy.ndarray, shape=(n_atoms, 3)
-    move : RingMove
-
-    Returns
-    -------
-    numpy.ndarray, shape=(n_atoms, 3)
-    """
-    ring = move.ring
-    centre = positions[ring].mean(axis=0)
-    normal = np.linalg.svd(positions[ring] - centre)[2][2]
-    out = positions.copy()
-    out[ring] = positions[ring] - 2.0 * np.outer((positions[ring] - centre) @ normal, normal)
-    n = len(ring)
-    for pos, branch in enumerate(move.branches):
-        if len(branch) == 0:
-            continue
-        before, atom, after = ring[pos - 1], ring[pos], ring[(pos + 1) % n]
-        old = _local_frame(positions, before, atom, after)
-        new = _local_frame(out, before, atom, after)
-        out[branch] = out[atom] + (positions[branch] - positions[atom]) @ old @ new.T
     return out
 
 
@@ -520,7 +435,7 @@ def run_chain(positions: np.ndarray, energy_kcal, topology: Topology, kt_kcal: f
             y = rotate_about_bond(x, topology.rotors[rng.integers(len(topology.rotors))],
                                   math.pi - 2.0 * math.pi * rng.random())
         elif kind == "ring":
-            y = ring_flip(x, topology.rings[rng.integers(len(topology.rings))])
+            y = reflect_ring(x, topology.rings[rng.integers(len(topology.rings))])
         else:
             y = x.copy()
             y[topology.carried[rng.integers(n_atoms)]] += sigma * rng.standard_normal(3)

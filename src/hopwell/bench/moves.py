@@ -37,7 +37,7 @@ from hopwell.systems.builder import BuildOptions
 # Defaults (flow over rotatable single-bond torsions given their bond angles, with darts);
 # amide-like torsions in the flow too; an unconditional flow; flow and one-torsion moves over
 # every moving torsion (methyl rotors too); no darts; torsion-pair moves added to the default, or
-# in place of half the one-torsion moves (the same number of proposals).
+# in place of half the one-torsion moves (the same number of proposals); no ring flips.
 VARIANTS = {
     "default": {},
     "stiff-in-flow": {"flow_stiff_torsions": True},
@@ -46,6 +46,7 @@ VARIANTS = {
     "no-darts": {"darts_per_cycle": 0},
     "pairs": {"pair_moves_per_cycle": 8},
     "half-pairs": {"single_moves_per_cycle": 8, "pair_moves_per_cycle": 8},
+    "no-ring-flips": {"ring_flips_per_cycle": 0},
 }
 
 
@@ -60,6 +61,7 @@ def run_variant(spec: str, out: Path, overrides: dict, seconds: float, training_
         "flow_acceptance": flow.acceptance(),
         "one_torsion_acceptance": sampler.stats["single"].acceptance(),
         "pair_acceptance": sampler.stats["pair"].acceptance(),
+        "ring_flip_acceptance": sampler.stats["ring"].acceptance(),
         "dart_acceptance": sampler.stats["dart"].acceptance(),
         "flow_proposals_per_s": flow.proposed / production_s,
         "ess_per_s": summary["effective_samples"] / production_s,

@@ -254,6 +254,7 @@ def run_status(run_dir: Path) -> dict:
         "flow_acceptance_production": rate("production"),
         "one_torsion_acceptance": rate("single"),
         "dart_acceptance": rate("dart") if "dart" in stats else None,
+        "ring_flip_acceptance": rate("ring") if "ring" in stats else None,
         "langevin_rolled_back": stats["langevin"].get("rolled_back") if "langevin" in stats else None,
         "states_failing_guard": stats["langevin"].get("outside_guard") if "langevin" in stats else None,
         "exchange_acceptance": (sum(stats["exchange"]["accepted"]) / sum(stats["exchange"]["attempted"])

@@ -6,8 +6,9 @@ Metropolis-Hastings ratio in its own docstring):
 1. a local segment (:class:`~hopwell.moves.langevin.LangevinSegment`, Langevin or GHMC);
 2. a block of flow proposals (:class:`~hopwell.moves.flow_block.FlowBlock`);
 3. one-torsion redraws (:class:`~hopwell.moves.one_torsion.OneTorsion`), torsion-pair redraws
-   when switched on (:class:`~hopwell.moves.torsion_pair.TorsionPair`) and seed darts between
-   the basins of the minimized seeds (:class:`~hopwell.sampling.basins.KnownBasins`).
+   when switched on (:class:`~hopwell.moves.torsion_pair.TorsionPair`), ring flips where the
+   molecule has a saturated ring (:class:`~hopwell.moves.ring_flip.RingFlip`) and seed darts
+   between the basins of the minimized seeds (:class:`~hopwell.sampling.basins.KnownBasins`).
 
 After the moves, basin probes look for minima outside every known basin
 (:mod:`hopwell.sampling.probes`; they work on copies and never change a walker).
@@ -34,6 +35,7 @@ import torch
 from rdkit import Chem
 
 from hopwell.coords.guards import ProposalGuard, refuse_failing_seeds
+from hopwell.coords.ring_flip import flippable_rings
 from hopwell.coords.torsions import molecule_zmatrix
 from hopwell.errors import InputError
 from hopwell.flow.training import FlowTrainer
@@ -41,6 +43,7 @@ from hopwell.moves.base import MoveCounters, RandomStreams, Walkers
 from hopwell.moves.flow_block import FlowBlock
 from hopwell.moves.langevin import LangevinSegment
 from hopwell.moves.one_torsion import OneTorsion
+from hopwell.moves.ring_flip import RingFlip
 from hopwell.moves.torsion_pair import TorsionPair
 from hopwell.sampling.basins import KnownBasins
 from hopwell.sampling.records import ChunkQueue, Snapshot
@@ -72,6 +75,7 @@ class Sampler:
         self.evaluator = self._evaluator(settings.temperature_K, platform)
         self.zmat = molecule_zmatrix(mol)
         self.guard = ProposalGuard.from_mol(mol, seeds_nm[0])
+        self.rings = flippable_rings(mol)
         self.trainer = FlowTrainer(self.zmat, mol, seeds_nm, settings, settings.seed)
         darts = settings.method == "flow" and settings.darts_per_cycle > 0
         self.basins = KnownBasins(self.zmat, self.trainer.all_moving, mol, self.guard, settings,
@@ -108,6 +112,7 @@ class Sampler:
         self.flow_move = FlowBlock(self.trainer, self.guard, self.evaluator, s.proposals_per_cycle)
         self.one_torsion = OneTorsion(self.trainer, self.guard, self.evaluator, s.single_moves_per_cycle)
         self.torsion_pair = TorsionPair(self.trainer, self.guard, self.evaluator, s.pair_moves_per_cycle)
+        self.ring_flip = RingFlip(self.rings, self.guard, self.evaluator, s.ring_flips_per_cycle)
         self.basins.build(self.evaluator)  # the seed darts and basin probes
 
     def _segment_evaluators(self) -> list[EnergyEvaluator]:
@@ -117,7 +122,7 @@ class Sampler:
     @property
     def _all_moves(self) -> list:
         """Every move built, scheduled or not, the darts and probe aside: their counters are checkpointed."""
-        return [self.local, self.flow_move, self.one_torsion, self.torsion_pair]
+        return [self.local, self.flow_move, self.one_torsion, self.torsion_pair, self.ring_flip]
 
     @property
     def moves(self) -> list:
@@ -128,14 +133,14 @@ class Sampler:
         return [self.local] + [m for m, on in ((self.flow_move, s.proposals_per_cycle),
                                                (self.one_torsion, s.single_moves_per_cycle),
                                                (self.torsion_pair, s.pair_moves_per_cycle),
+                                               (self.ring_flip, s.ring_flips_per_cycle and self.rings),
                                                (self.basins.darts, self.basins.darts is not None)) if on]
 
     @property
     def stats(self) -> dict[str, MoveCounters]:
         """Every move's counters by checkpoint key (``training``/``production`` for the flow)."""
         return {**self.flow_move.counters, "single": self.one_torsion.counters, "pair": self.torsion_pair.counters,
-                "dart": self.basins.dart_counters,
-                "langevin": self.local.counters}
+                "ring": self.ring_flip.counters, "dart": self.basins.dart_counters, "langevin": self.local.counters}
 
     @property
     def n_walkers(self) -> int:

@@ -14,6 +14,7 @@ from hopwell.moves.exchange import LadderSettings
 from hopwell.moves.flow_block import FlowBlockSettings
 from hopwell.moves.langevin import LangevinSettings
 from hopwell.moves.one_torsion import OneTorsionSettings
+from hopwell.moves.ring_flip import RingFlipSettings
 from hopwell.moves.torsion_pair import TorsionPairSettings
 from hopwell.sampling.probes import ProbeSettings
 
@@ -41,13 +42,14 @@ class ScheduleSettings:
 
 
 @dataclass
-class SamplerSettings(ProbeSettings, FlowSettings, DartSettings, TorsionPairSettings, OneTorsionSettings, FlowBlockSettings,
-                      LadderSettings, LangevinSettings, ScheduleSettings):
+class SamplerSettings(ProbeSettings, FlowSettings, DartSettings, RingFlipSettings, TorsionPairSettings, OneTorsionSettings,
+                      FlowBlockSettings, LadderSettings, LangevinSettings, ScheduleSettings):
     """Every setting of a run, flat as written to ``run.toml``; each group is documented with the
     part it belongs to: :class:`ScheduleSettings`, :class:`~hopwell.moves.langevin.LangevinSettings`,
     :class:`~hopwell.moves.exchange.LadderSettings`, :class:`~hopwell.moves.flow_block.FlowBlockSettings`,
     :class:`~hopwell.moves.one_torsion.OneTorsionSettings`,
-    :class:`~hopwell.moves.torsion_pair.TorsionPairSettings`, :class:`~hopwell.moves.darts.DartSettings`,
+    :class:`~hopwell.moves.torsion_pair.TorsionPairSettings`, :class:`~hopwell.moves.ring_flip.RingFlipSettings`,
+    :class:`~hopwell.moves.darts.DartSettings`,
     :class:`~hopwell.sampling.probes.ProbeSettings` and :class:`~hopwell.flow.training.FlowSettings`."""
 
 
