@@ -128,6 +128,29 @@ class MoveResult:
     frames_nm: np.ndarray | None = None
 
 
+def guarded_energies(guard, evaluator, positions_nm: np.ndarray) -> tuple[np.ndarray, object]:
+    """Energies (kJ/mol) of the proposals that pass the guard, +inf for the rest (never evaluated).
+
+    Parameters
+    ----------
+    guard : hopwell.coords.guards.ProposalGuard
+    evaluator : hopwell.systems.energy.EnergyEvaluator
+    positions_nm : numpy.ndarray, shape ``(n, n_atoms, 3)``
+
+    Returns
+    -------
+    energy_kj : numpy.ndarray, shape ``(n,)``
+    mask : hopwell.coords.guards.GuardMask
+        Which proposals were rejected, and why.
+    """
+    mask = guard(positions_nm)
+    ok = ~np.asarray(mask.rejected)
+    energy_kj = np.full(len(positions_nm), np.inf)
+    if ok.any():
+        energy_kj[ok] = evaluator.energies_kj(positions_nm[ok])
+    return energy_kj, mask
+
+
 class Move(Protocol):
     """The interface of a move (see the module docstring)."""
 

@@ -31,7 +31,7 @@ from hopwell.coords.guards import ProposalGuard
 from hopwell.coords.internal import ZMatrix, cartesian_to_internal, internal_to_cartesian
 from hopwell.coords.rotate import rigid_rows, rotate_torsions, torsion_axes
 from hopwell.flow.training import FlowTrainer
-from hopwell.moves.base import MoveCounters, MoveResult, RandomStreams, Walkers
+from hopwell.moves.base import MoveCounters, MoveResult, RandomStreams, Walkers, guarded_energies
 from hopwell.systems.energy import EnergyEvaluator
 
 
@@ -134,11 +134,7 @@ class OneTorsion:
             owner = np.repeat(np.arange(len(active)), counts)
             bounds = np.concatenate([[0], np.cumsum(counts)])
             proposed, log_q_ratio = self._draw(positions_nm, current, owner, streams.numpy)
-            mask = self.guard(proposed)
-            ok = ~np.asarray(mask.rejected)
-            energy = np.full(len(owner), np.inf)
-            if ok.any():
-                energy[ok] = self.evaluator.energies_kj(proposed[ok])
+            energy, mask = guarded_energies(self.guard, self.evaluator, proposed)
             log_u = np.log(streams.numpy.random(len(owner)))
             log_alpha = -(energy - walkers.energies_kj[walker_ids][owner]) / kT + log_q_ratio
             hit = np.isfinite(energy) & (log_u < log_alpha)

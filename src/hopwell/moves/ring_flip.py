@@ -24,7 +24,7 @@ import numpy as np
 
 from hopwell.coords.guards import ProposalGuard
 from hopwell.coords.ring_flip import RingReflection, reflect_ring
-from hopwell.moves.base import MoveCounters, MoveResult, RandomStreams, Walkers
+from hopwell.moves.base import MoveCounters, MoveResult, RandomStreams, Walkers, guarded_energies
 from hopwell.systems.energy import EnergyEvaluator
 
 
@@ -69,11 +69,7 @@ class RingFlip:
         for _ in range(self.n):
             chosen = streams.numpy.integers(0, len(self.rings), len(which))
             proposed = np.stack([reflect_ring(walkers.positions_nm[w], self.rings[r]) for w, r in zip(which, chosen)])
-            mask = self.guard(proposed)
-            ok = ~np.asarray(mask.rejected)
-            energy = np.full(len(which), np.inf)
-            if ok.any():
-                energy[ok] = self.evaluator.energies_kj(proposed[ok])
+            energy, mask = guarded_energies(self.guard, self.evaluator, proposed)
             log_u = np.log(streams.numpy.random(len(which)))
             hit = np.isfinite(energy) & (log_u < -(energy - walkers.energies_kj[which]) / self.evaluator.kT)
             for j in np.flatnonzero(hit):
