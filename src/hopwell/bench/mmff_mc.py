@@ -6,9 +6,9 @@ NAME is looked up in ``systems/ligands/ligands.smi`` (``--ligands`` to use anoth
 This is an outside check on hopwell: it imports nothing of hopwell but the table printer and the
 ring reflection's geometry (a proposal only, whose involution and unit Jacobian
 ``tests/test_mmff_mc.py`` checks numerically), takes its energies from ``rdkit.ForceField``
-(``MMFFGetMoleculeForceField(...).CalcEnergy``, kcal/mol, vacuum, constant dielectric 1) rather than from hopwell's OpenMM forces, and samples Cartesian
-coordinates with its own moves. Each step draws one move type with a fixed probability and
-accepts the proposal y from x with
+(``MMFFGetMoleculeForceField(...).CalcEnergy``, kcal/mol, vacuum, constant dielectric 1) rather
+than from hopwell's OpenMM forces, and samples Cartesian coordinates with its own moves. Each
+step draws one move type with a fixed probability and accepts the proposal y from x with
 
     A(x -> y) = min(1, exp(-(U(y) - U(x)) / kT) |det dT/dx|),    kT = R T (kcal/mol),
 

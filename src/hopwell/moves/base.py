@@ -27,6 +27,8 @@ from typing import Protocol
 import numpy as np
 import torch
 
+from hopwell.coords.guards import GuardMask
+
 RECENT = 20  # applications kept in a move's moving acceptance window
 REJECT_NONE, REJECT_CLASH, REJECT_STEREO = 0, 1, 2
 
@@ -128,7 +130,7 @@ class MoveResult:
     frames_nm: np.ndarray | None = None
 
 
-def guarded_energies(guard, evaluator, positions_nm: np.ndarray) -> tuple[np.ndarray, object]:
+def guarded_energies(guard, evaluator, positions_nm: np.ndarray) -> tuple[np.ndarray, GuardMask]:
     """Energies (kJ/mol) of the proposals that pass the guard, +inf for the rest (never evaluated).
 
     Parameters
