@@ -102,3 +102,27 @@ def test_a_basin_found_in_production_keeps_the_verdict_from_converged(production
     verdict = judge(series, estimate, ["a", "b"], [False, False], found_basins=found)
     assert verdict.converged is converged
     assert any("found-basins.sdf" in text for text in verdict.reasons + verdict.warnings)
+
+
+# kT at 300 K from the molar gas constant, R = 8.314462618 J/(mol K) (CODATA 2018).
+KT_300_KJ = 8.314462618e-3 * 300.0
+
+
+@pytest.mark.parametrize("above_kj, converged", [
+    ([22.4], True),               # e^(3 - 8.98) = 0.25%: below the 0.5% floor, a warning
+    ([15.0], False),              # e^(3 - 6.01) = 4.9%: could matter
+    ([25.0, 25.0, 25.0], True),   # 3 x 0.09%
+    ([21.0] * 3, False),          # 3 x 0.22% = 0.66%: each below the floor, together above it
+    ([-2.0], False),              # lower than every known minimum
+])
+def test_a_basin_found_in_production_is_weighed_by_its_energy(above_kj, converged):
+    rng = np.random.default_rng(0)
+    series = rng.integers(0, 2, size=(4, 4000))
+    estimate = population_estimate(series, 2, rng)
+    found = [{"cycle": 900, "production": True, "energy_kj": e, "above_lowest_kj": e} for e in above_kj]
+    weighed = judge(series, estimate, ["a", "b"], [False, False], found_basins=found, kT_kj=KT_300_KJ)
+    assert weighed.converged is converged
+    text = (weighed.warnings if converged else weighed.reasons)[-1]
+    assert "found in production" in text and "found-basins.sdf" in text
+    # without the temperature the finds are not weighed and always hold the verdict back
+    assert not judge(series, estimate, ["a", "b"], [False, False], found_basins=found).converged

@@ -113,7 +113,7 @@ def analyse(run_dir: Path, rng_seed: int = 0, n_boot: int = 1000, reweight: dict
     training = production.training_dihedrals_rad
     late = first_entered_in_production(labels, model.assign(training) if len(training) else np.zeros(0, int),
                                        model.names)
-    verdict = judge(series, pops, model.names, named, importance, local_move, found, late)
+    verdict = judge(series, pops, model.names, named, importance, local_move, found, late, kT)
     damage = ([rebuilt] if rebuilt else []) + checkpoint_warnings(store) + [
         f"{exc}: skipped, its records are not in this report" for exc in production.damaged_chunks]
     summary = {

@@ -17,6 +17,11 @@ RHAT_MAX = 1.01  # Vehtari et al. 2021 recommend trusting estimates only below 1
 MIN_TRANSITIONS = 10  # per populated state, pooled over walkers (common practice, chosen)
 MIN_ESS = 100
 MIN_IS_ESS_FRACTION = 0.1  # importance ESS below 10% of proposals: weights too heavy-tailed
+# A basin found in production is weighed against the lowest known minimum by its energy alone,
+# times e^3 for what its vibrational entropy could add (about 6 cal/(mol K) in its favour: a
+# chosen allowance, wider than the entropy differences between a molecule's own rotamers
+# usually are, a judgement rather than a measured bound).
+ENTROPY_ALLOWANCE = 3.0
 
 
 @dataclass
@@ -53,9 +58,33 @@ def first_entered_in_production(production_labels: np.ndarray, training_labels: 
     return [names[s] for s in sorted(late) if s != len(names) - 1]
 
 
+def late_basin_bound(above_lowest_kj: list[float], kT_kj: float) -> float:
+    """At most how much weight basins found in production can carry, by their energies.
+
+    Each basin's Boltzmann factor relative to the lowest known minimum, ``exp(-dE / kT)``, times
+    ``exp(ENTROPY_ALLOWANCE)`` for a vibrational entropy larger than the minimum's, summed over
+    the basins. The whole distribution weighs at least as much as the lowest minimum's basin, so
+    this bounds their share of it as far as the harmonic picture and the allowance hold.
+
+    Parameters
+    ----------
+    above_lowest_kj : list of float
+        Each basin's minimized energy above the lowest known minimum (kJ/mol).
+    kT_kj : float
+        kT at the run's temperature (kJ/mol).
+
+    Returns
+    -------
+    float
+    """
+    above = np.asarray(above_lowest_kj, dtype=float)
+    return float(np.exp(ENTROPY_ALLOWANCE - above / kT_kj).sum())
+
+
 def judge(series: np.ndarray, estimate: stats.PopulationResult, names: list[str],
           named: list[bool], importance: dict | None = None, local_move: dict | None = None,
-          found_basins: list[dict] | None = None, late_states: list[str] | None = None) -> Verdict:
+          found_basins: list[dict] | None = None, late_states: list[str] | None = None,
+          kT_kj: float | None = None) -> Verdict:
     """Apply the verdict's rules to a run.
 
     Parameters
@@ -80,11 +109,15 @@ def judge(series: np.ndarray, estimate: stats.PopulationResult, names: list[str]
         warned about (both are expected to be 0).
     found_basins : list of dict, optional
         The basin probes' finds (:mod:`hopwell.sampling.probes`; ``production``,
-        ``above_lowest_kj``): one found in production, which no move targets, makes the run "not
-        converged"; those found in training (dart centres from then on) are a warning.
+        ``above_lowest_kj``): those found in production, which no move targets, make the run "not
+        converged" unless ``kT_kj`` is given and :func:`late_basin_bound` puts their weight below
+        the report's population floor, when they are a warning; those found in training (dart
+        centres from then on) are a warning.
     late_states : list of str, optional
         States first entered in production (:func:`first_entered_in_production`): a warning,
         since their basins were missing from the seeds.
+    kT_kj : float, optional
+        The run's kT, to weigh the basins found in production by their energies.
 
     Returns
     -------
@@ -148,9 +181,15 @@ def judge(series: np.ndarray, estimate: stats.PopulationResult, names: list[str]
     early = [b for b in found_basins or [] if not b["production"]]
     if late:
         lowest = min(b["above_lowest_kj"] for b in late)
-        out.reasons.append(f"{len(late)} basin(s) found in production that no move targets (the lowest"
-                           f" {lowest:.1f} kJ/mol above the known minima): their population may be missing;"
-                           " seed them (found-basins.sdf) and run again")
+        found = (f"{len(late)} basin(s) found in production that no move targets (the lowest"
+                 f" {lowest:.1f} kJ/mol above the known minima)")
+        bound = late_basin_bound([b["above_lowest_kj"] for b in late], kT_kj) if kT_kj else None
+        if bound is not None and bound < POPULATION_FLOOR:
+            out.warnings.append(f"{found}: by their energies they hold at most {100 * bound:.2g}% in all,"
+                                " below the report's floor; seed them next time (found-basins.sdf)")
+        else:
+            out.reasons.append(f"{found}: their population may be missing; seed them (found-basins.sdf)"
+                               " and run again")
     if early:
         out.warnings.append(f"found during the run: {len(early)} basin(s) no seed was in (dart centres from"
                             " then on); seed them next time (found-basins.sdf)")
